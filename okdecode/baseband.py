@@ -1,0 +1,655 @@
+"""Stage 1: Capture -> Envelope. Carrier search, mixing, low-pass, decimation, envelope.
+
+The chain makes two passes over the capture at its own rate and no more:
+
+1. :func:`search_carriers` frames the samples, takes each frame's power spectrum and
+   keeps per frequency bin the statistics of its power from frame to frame. A keyed
+   carrier's power switches slowly between two levels, so it is correlated from one
+   frame to the next; noise is not, and neither is a steady carrier or hum, whose
+   power stays put. The autocorrelation of each bin's power at lags of one to four
+   frames, summed, is the keying score (under the null each lag's is about N(0, 1/n)
+   for n frames).
+2. :class:`Downconverter` mixes the chosen carrier to 0 Hz and decimates in polyphase
+   FIR stages to a complex baseband of about 1 kHz, which is kept: everything after
+   (fine tuning, the matched envelope, re-tuning once the speed is known, the C/N0
+   measurement) works on it, at a thousandth of the work.
+
+References
+----------
+.. [1] P. D. Welch, "The use of fast Fourier transform for the estimation of power
+   spectra", IEEE Trans. Audio Electroacoust. 15(2), 1967.
+.. [2] R. E. Crochiere and L. R. Rabiner, "Multirate Digital Signal Processing",
+   Prentice-Hall, 1983 (multistage decimation, polyphase filters).
+.. [3] J. F. Kaiser, "Nonrecursive digital filter design using the I0-sinh window
+   function", Proc. IEEE ISCAS, 1974.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .capture import Capture
+from .errors import ParameterError
+
+#: Half-width of the band kept in the stored baseband, Hz: the keying sidebands at
+#: 50 WPM, a coarse carrier error and some drift all fit inside it.
+BASEBAND_HALF_BAND_HZ = 250.0
+#: The stored baseband runs at a rate in [BASEBAND_MIN_HZ, 2 * BASEBAND_MIN_HZ).
+BASEBAND_MIN_HZ = 750.0
+#: Length of one analysis frame of the carrier search, s (about 60 Hz resolution; a
+#: frame shorter than a dot at 50 WPM).
+SEARCH_FRAME_S = 0.016
+#: Lags, in frames, over which the search sums the power autocorrelation.
+SEARCH_LAGS = 4
+#: The carrier search judges keying over segments of this length, s, so that a short
+#: message in a long quiet recording is not diluted.
+SEARCH_SEGMENT_S = 20.0
+
+
+# ---------------------------------------------------------------------------------------
+# Pass 1: where is a keyed carrier?
+
+
+@dataclass(frozen=True)
+class Carrier:
+    """One candidate keyed carrier found by the search."""
+
+    frequency_hz: float  # absolute (center_hz included)
+    channel: int
+    score: float  # largest segment z-score of the summed power autocorrelation
+    keyed_power: float  # summed autocovariance of bin power, relative to the noise floor²
+    level_db: float  # mean bin power over the noise floor, dB
+
+
+@dataclass(frozen=True)
+class Spectrum:
+    """The result of the carrier search: a mean spectrum and the keyed candidates."""
+
+    frequency_hz: np.ndarray  # shape (n_bins,), absolute, ascending
+    power_dbfs: np.ndarray  # shape (n_channels, n_bins), mean frame power, dB full scale
+    score: np.ndarray  # shape (n_channels, n_bins), keying z-score
+    threshold: float  # z-score above which a bin counts as keyed
+    carriers: tuple[Carrier, ...]  # strongest keyed first; empty if none
+    bin_hz: float  # frequency spacing of the bins
+    n_frames: int
+
+
+class KeyingSearch:
+    """Streaming frame statistics per frequency bin for :func:`search_carriers`.
+
+    Feeding the capture block by block equals one pass over it.
+    """
+
+    def __init__(self, *, rate_hz: float, n_channels: int, is_complex: bool,
+                 center_hz: float = 0.0, frame_s: float = SEARCH_FRAME_S,
+                 segment_s: float = SEARCH_SEGMENT_S):
+        self.rate_hz, self.is_complex, self.center_hz = rate_hz, is_complex, center_hz
+        from scipy import fft
+
+        self._fft = fft
+        self.frame_len = fft.next_fast_len(max(16, int(round(frame_s * rate_hz))), real=True)
+        n = self.frame_len
+        self._window = np.hanning(n + 2)[1:-1].astype(np.float32)
+        # full-scale sine -> 0 dBFS in its bin: a real sine of amplitude 1 gives
+        # |X|² = (sum(w)/2)², a complex exponential of amplitude 1 gives sum(w)².
+        self._scale = (2.0 if not is_complex else 1.0) / float(np.sum(self._window)) ** 2
+        self.n_bins = n if is_complex else n // 2 + 1
+        shape = (n_channels, self.n_bins)
+        self._sum = np.zeros(shape)
+        # S1, S2 and the lagged products S(l) for l = 1..SEARCH_LAGS
+        self._seg = [np.zeros(shape) for _ in range(2 + SEARCH_LAGS)]
+        self._seg_n = 0
+        self._best_z = np.full(shape, -np.inf)
+        self._best_cov = np.zeros(shape)
+        self._last = np.empty((n_channels, 0, self.n_bins))  # the frames before this block
+        self._pending = np.empty((0, n_channels), dtype=np.complex64 if is_complex
+                                 else np.float32)
+        self.n_frames = 0
+        self.n_segments = 0
+        self._frames_per_segment = max(16, int(segment_s * rate_hz / n))
+
+    def process(self, block: np.ndarray) -> None:
+        """Take the next ``(n, n_channels)`` block of samples."""
+        buf = np.concatenate([self._pending, block.astype(self._pending.dtype, copy=False)])
+        n_frames = buf.shape[0] // self.frame_len
+        self._pending = buf[n_frames * self.frame_len:]
+        if n_frames == 0:
+            return
+        frames = buf[: n_frames * self.frame_len].reshape(n_frames, self.frame_len, -1)
+        frames = frames.transpose(2, 0, 1) * self._window  # (channels, frames, n)
+        if self.is_complex:
+            spec = np.fft.fftshift(self._fft.fft(frames, axis=-1), axes=-1)
+        else:
+            spec = self._fft.rfft(frames, axis=-1)
+        power = (spec.real**2 + spec.imag**2) * self._scale  # (channels, frames, bins)
+        start = 0
+        while start < n_frames:
+            take = min(n_frames - start, self._frames_per_segment - self._seg_n)
+            self._accumulate(power[:, start : start + take])
+            start += take
+            if self._seg_n >= self._frames_per_segment:
+                self._close_segment()
+
+    def _accumulate(self, p: np.ndarray) -> None:
+        self._sum += p.sum(axis=1)
+        s1, s2, *lagged = self._seg
+        s1 += p.sum(axis=1)
+        s2 += np.einsum("cfb,cfb->cb", p, p)
+        both = np.concatenate([self._last, p], axis=1)
+        k = self._last.shape[1]
+        for lag, acc in enumerate(lagged, start=1):
+            lo = max(k - lag, 0)  # pairs (i - lag, i) with i a frame of this block
+            end = both.shape[1] - lag
+            if end > lo:
+                acc += np.einsum("cfb,cfb->cb", both[:, lo + lag :], both[:, lo:end])
+        self._last = both[:, -SEARCH_LAGS:].copy()
+        self._seg_n += p.shape[1]
+        self.n_frames += p.shape[1]
+
+    def _close_segment(self) -> None:
+        n = self._seg_n
+        if n >= 8:
+            s1, s2, *lagged = self._seg
+            mean = s1 / n
+            var = np.maximum(s2 / n - mean**2, 1e-300)
+            cov = np.zeros_like(mean)
+            for lag, acc in enumerate(lagged, start=1):
+                # a segment's first frames pair with the frames before it, except in the
+                # first segment
+                n_pairs = n if self.n_segments else n - lag
+                cov += acc / max(n_pairs, 1) - mean**2
+            # under the null each lag's autocorrelation is about N(0, 1/n), independently
+            z = cov / var * math.sqrt(n / SEARCH_LAGS)
+            better = z > self._best_z
+            self._best_z = np.where(better, z, self._best_z)
+            self._best_cov = np.where(better, cov, self._best_cov)
+            self.n_segments += 1
+        self._seg = [np.zeros_like(a) for a in self._seg]
+        self._seg_n = 0
+
+    def result(self, *, min_hz: float = 0.0, max_candidates: int = 8) -> Spectrum:
+        """The spectrum and the keyed carriers, strongest first.
+
+        Parameters
+        ----------
+        min_hz : float
+            Real captures: bins below this frequency are not candidates (DC, hum), Hz.
+        max_candidates : int
+            At most this many carriers are returned.
+        """
+        if self._seg_n >= 8 or self.n_segments == 0:
+            self._close_segment()
+        n_frames = max(self.n_frames, 1)
+        mean = self._sum / n_frames
+        if self.is_complex:
+            freq = np.fft.fftshift(np.fft.fftfreq(self.frame_len, 1.0 / self.rate_hz))
+        else:
+            freq = np.fft.rfftfreq(self.frame_len, 1.0 / self.rate_hz)
+        freq = freq + self.center_hz
+        bin_hz = self.rate_hz / self.frame_len
+        floor = np.maximum(np.median(mean, axis=1, keepdims=True), 1e-300)
+        z = np.where(np.isfinite(self._best_z), self._best_z, 0.0)
+        valid = np.ones(self.n_bins, dtype=bool)
+        if not self.is_complex:
+            valid &= (freq - self.center_hz) >= max(min_hz, 1.5 * bin_hz)
+            valid &= (freq - self.center_hz) <= self.rate_hz / 2 - 1.5 * bin_hz
+        n_tests = max(int(valid.sum()) * z.shape[0] * max(self.n_segments, 1), 1)
+        # Bonferroni over every bin and segment at a 1 % false-alarm rate in all
+        threshold = max(4.0, math.sqrt(2.0 * math.log(n_tests / 0.01)))
+        keyed_power = self._best_cov / floor**2
+        found: list[Carrier] = []
+        taken = np.zeros_like(z, dtype=bool)
+        order = np.argsort(-keyed_power, axis=None)
+        for flat in order:
+            ch, b = np.unravel_index(flat, z.shape)
+            if not valid[b] or z[ch, b] < threshold or keyed_power[ch, b] <= 0:
+                continue
+            if taken[:, b].any():
+                continue
+            # a carrier owns its neighbours: the Hann main lobe and near leakage
+            lo, hi = max(0, b - 3), min(self.n_bins, b + 4)
+            # the same carrier in another channel is not another carrier
+            taken[:, lo:hi] = True
+            found.append(Carrier(frequency_hz=float(freq[b] + _peak_offset(mean[ch], b) * bin_hz),
+                                 channel=int(ch), score=float(z[ch, b]),
+                                 keyed_power=float(keyed_power[ch, b]),
+                                 level_db=float(10 * np.log10(mean[ch, b] / floor[ch, 0]))))
+            if len(found) >= max_candidates:
+                break
+        return Spectrum(frequency_hz=freq, power_dbfs=10 * np.log10(np.maximum(mean, 1e-30)),
+                        score=z, threshold=threshold, carriers=tuple(found), bin_hz=bin_hz,
+                        n_frames=self.n_frames)
+
+
+def _peak_offset(power: np.ndarray, b: int) -> float:
+    """Parabolic interpolation of a spectral peak on log power, in bins (|x| <= 0.5)."""
+    if b <= 0 or b >= power.size - 1:
+        return 0.0
+    a, c, d = np.log(np.maximum(power[b - 1 : b + 2], 1e-300))
+    den = a - 2 * c + d
+    if den >= 0:
+        return 0.0
+    return float(np.clip(0.5 * (a - d) / den, -0.5, 0.5))
+
+
+def search_carriers(capture: Capture, *, min_hz: float = 100.0,
+                    progress=None) -> Spectrum:
+    """Find the keyed carriers in a capture (one pass over its samples).
+
+    Parameters
+    ----------
+    capture : Capture
+        The recording, every channel.
+    min_hz : float
+        Real captures: lowest frequency considered, Hz (keeps DC and mains hum out).
+    progress : callable, optional
+        Called with the number of samples handled after each block.
+
+    Returns
+    -------
+    Spectrum
+        ``carriers`` lists the bins whose power is keyed, strongest first; it is empty
+        for noise, a steady carrier or hum.
+
+    Notes
+    -----
+    For n independent frames of noise, or of a steady carrier in noise, the sample
+    autocorrelation of a bin's power at each lag is close to N(0, 1/n) (Bartlett's
+    formula for white series), so the sum of K lags gives ``z = sum(r) * sqrt(n / K)``,
+    compared with a Bonferroni threshold over all bins and segments. Keying correlates
+    the power of nearby frames, since a mark or a space outlasts a 16 ms frame at any
+    speed up to 50 WPM.
+    """
+    search = KeyingSearch(rate_hz=capture.rate_hz, n_channels=capture.n_channels,
+                          is_complex=capture.is_complex, center_hz=capture.center_hz)
+    for block in capture.blocks():
+        search.process(block)
+        if progress is not None:
+            progress(block.shape[0])
+    return search.result(min_hz=min_hz)
+
+
+# ---------------------------------------------------------------------------------------
+# Pass 2: mix and decimate
+
+
+class FirDecimator:
+    """Polyphase FIR low-pass and decimation of a real float32 stream, state kept.
+
+    ``y[m] = sum_i h[i] x[m*D + D - 1 - i]``: the (M, D) reshape of the input lets each
+    polyphase branch be one matrix-vector product on contiguous rows.
+    """
+
+    def __init__(self, taps: np.ndarray, factor: int):
+        d = int(factor)
+        p = -(-taps.size // d)
+        padded = np.concatenate([np.zeros(p * d - taps.size), taps])
+        self.factor, self.n_branches = d, p
+        self.delay = (p * d - taps.size) + (taps.size - 1) / 2.0  # input samples
+        self._g = np.ascontiguousarray(padded[::-1].reshape(p, d), dtype=np.float32)
+        self._hist = np.zeros((p - 1) * d, dtype=np.float32)
+
+    def process(self, x: np.ndarray) -> np.ndarray:
+        buf = np.concatenate([self._hist, x.astype(np.float32, copy=False)])
+        d, p = self.factor, self.n_branches
+        rows = buf.size // d
+        m = rows - (p - 1)
+        if m <= 0:
+            self._hist = buf
+            return np.empty(0, dtype=np.float32)
+        x2 = buf[: rows * d].reshape(rows, d)
+        y = x2[0:m] @ self._g[0]
+        for k in range(1, p):
+            y += x2[k : k + m] @ self._g[k]
+        self._hist = buf[m * d :]
+        return y
+
+    @property
+    def start_offset(self) -> float:
+        """Time of output 0 after input 0, in input samples."""
+        return self.factor - 1 - self.delay
+
+
+def plan_decimation(rate_hz: float, *, min_out_hz: float = BASEBAND_MIN_HZ) -> list[int]:
+    """Stage factors for decimating to a rate in ``[min_out_hz, 2 * min_out_hz)``.
+
+    The total factor is the largest one whose prime factors are all at most 7, and the
+    stages take the largest factors first, each at most 16 (common practice: the first
+    stage, at the highest rate, does the most with a short filter).
+
+    Examples
+    --------
+    >>> plan_decimation(48000.0), plan_decimation(8000.0), plan_decimation(4000.0)
+    ([16, 4], [10], [5])
+    """
+    best = 1
+    top = int(rate_hz // min_out_hz)
+    for total in range(top, max(int(rate_hz // (2 * min_out_hz)), 0), -1):
+        if _max_prime(total) <= 7:
+            best = total
+            break
+    if best <= 1:
+        return []
+    primes = _primes(best)
+    stages: list[int] = []
+    current = 1
+    for q in sorted(primes, reverse=True):
+        if current * q > 16:
+            stages.append(current)
+            current = 1
+        current *= q
+    stages.append(current)
+    return sorted(stages, reverse=True)
+
+
+def _primes(n: int) -> list[int]:
+    out, q = [], 2
+    while q * q <= n:
+        while n % q == 0:
+            out.append(q)
+            n //= q
+        q += 1
+    if n > 1:
+        out.append(n)
+    return out
+
+
+def _max_prime(n: int) -> int:
+    return max(_primes(n)) if n > 1 else 1
+
+
+def design_stage(rate_in_hz: float, factor: int, half_band_hz: float,
+                 atten_db: float = 75.0) -> np.ndarray:
+    """Kaiser-window low-pass for one decimation stage.
+
+    The band ``|f| < half_band_hz`` is kept; everything that would alias into it,
+    ``|f| > rate_out - half_band_hz``, is attenuated by ``atten_db`` [3]_.
+    """
+    from scipy import signal
+
+    rate_out = rate_in_hz / factor
+    width_hz = max(rate_out - 2 * half_band_hz, 0.05 * rate_out)
+    numtaps, beta = signal.kaiserord(atten_db, width_hz / (rate_in_hz / 2))
+    numtaps |= 1  # odd: a whole-sample group delay
+    return signal.firwin(numtaps, rate_out / 2, window=("kaiser", beta), fs=rate_in_hz)
+
+
+class Downconverter:
+    """Mix to baseband, low-pass, decimate. Feeding it block by block equals one pass.
+
+    Parameters
+    ----------
+    rate_hz : float
+        Input sample rate, Hz.
+    carrier_hz : float
+        Frequency mixed to 0 Hz, relative to the capture's 0 Hz (for I/Q, baseband
+        frequency, may be negative), Hz.
+    is_complex : bool
+        Whether the input is complex (I/Q).
+    half_band_hz : float
+        Half-width of the band protected from aliasing, Hz.
+    """
+
+    def __init__(self, *, rate_hz: float, carrier_hz: float, is_complex: bool,
+                 half_band_hz: float = BASEBAND_HALF_BAND_HZ,
+                 min_out_hz: float = BASEBAND_MIN_HZ):
+        self.rate_hz, self.carrier_hz, self.is_complex = rate_hz, carrier_hz, is_complex
+        self.factors = plan_decimation(rate_hz, min_out_hz=min_out_hz)
+        self.stages: list[tuple[FirDecimator, FirDecimator]] = []
+        rate = rate_hz
+        offset = 0.0  # time of output 0 after input 0, s
+        for factor in self.factors:
+            taps = design_stage(rate, factor, half_band_hz)
+            self.stages.append((FirDecimator(taps, factor), FirDecimator(taps, factor)))
+            offset += self.stages[-1][0].start_offset / rate
+            rate /= factor
+        self.out_rate_hz = rate
+        self.start_s = offset
+        self._step_rad = 2 * math.pi * carrier_hz / rate_hz
+        self._phase_rad = 0.0
+        self._table_len = 0
+        self._cos = self._sin = np.empty(0, dtype=np.float32)
+
+    def _tables(self, n: int) -> tuple[np.ndarray, np.ndarray]:
+        if n > self._table_len:
+            arg = self._step_rad * np.arange(n, dtype=np.float64)
+            self._cos, self._sin = np.cos(arg), np.sin(arg)
+            self._table_len = n
+        return self._cos[:n], self._sin[:n]
+
+    def process(self, block: np.ndarray) -> np.ndarray:
+        """Next block of samples (1-D) to the next baseband samples (complex64)."""
+        n = block.shape[0]
+        if n == 0:
+            return np.empty(0, dtype=np.complex64)
+        cos_t, sin_t = self._tables(n)
+        c, s = math.cos(self._phase_rad), math.sin(self._phase_rad)
+        # e^{-j(phase + step n)} = cos - j sin, from the tables and the block's phase
+        lo_cos = (c * cos_t - s * sin_t).astype(np.float32)
+        lo_sin = (s * cos_t + c * sin_t).astype(np.float32)
+        if self.is_complex:
+            xr, xi = block.real.astype(np.float32), block.imag.astype(np.float32)
+            i_part = xr * lo_cos + xi * lo_sin
+            q_part = xi * lo_cos - xr * lo_sin
+        else:
+            x = block.astype(np.float32, copy=False)
+            i_part, q_part = x * lo_cos, -(x * lo_sin)
+        self._phase_rad = (self._phase_rad + self._step_rad * n) % (2 * math.pi)
+        for dec_i, dec_q in self.stages:
+            i_part, q_part = dec_i.process(i_part), dec_q.process(q_part)
+        out = np.empty(i_part.size, dtype=np.complex64)
+        out.real, out.imag = i_part, q_part
+        return out
+
+    def flush(self) -> np.ndarray:
+        """Push zeros through so the last input samples come out, then reset."""
+        n, scale = 0, 1
+        for dec, _ in self.stages:  # each stage's history, in input samples
+            n += dec.n_branches * dec.factor * scale
+            scale *= dec.factor
+        return self.process(np.zeros(n, dtype=np.complex64 if self.is_complex else np.float32))
+
+
+@dataclass(frozen=True)
+class Baseband:
+    """The capture mixed down at the carrier and decimated, kept whole (about 1 kHz)."""
+
+    samples: np.ndarray  # shape (n,), complex64, full-scale units as in the capture
+    rate_hz: float
+    start_s: float  # time of samples[0] from the start of the capture, s
+    carrier_hz: float  # absolute frequency now at 0 Hz
+    channel: int
+    duration_s: float  # of the capture
+    half_band_hz: float  # protected band |f| < half_band_hz
+
+
+def tune(capture: Capture, carrier_hz: float, *, channel: int = 0,
+         progress=None) -> Baseband:
+    """Mix a capture's carrier to 0 Hz and decimate it to about 1 kHz (one pass).
+
+    Parameters
+    ----------
+    capture : Capture
+    carrier_hz : float
+        Absolute carrier frequency, Hz.
+    channel : int
+        Channel index.
+    progress : callable, optional
+        Called with the number of samples handled after each block.
+
+    Raises
+    ------
+    ParameterError
+        If the carrier lies outside what the capture's rate can hold.
+    """
+    rel_hz = carrier_hz - capture.center_hz
+    nyquist = capture.rate_hz / 2
+    if not np.isfinite(rel_hz) or (capture.is_complex and abs(rel_hz) >= nyquist) or (
+            not capture.is_complex and not 0 < rel_hz < nyquist):
+        span = (f"{capture.center_hz - nyquist:g} to {capture.center_hz + nyquist:g} Hz"
+                if capture.is_complex else f"0 to {nyquist:g} Hz")
+        raise ParameterError(capture.source, f"carrier {carrier_hz:g} Hz is outside the "
+                             "recorded band", expected=span)
+    if not 0 <= channel < capture.n_channels:
+        raise ParameterError(capture.source, f"channel {channel} does not exist",
+                             expected=f"0 to {capture.n_channels - 1}")
+    dc = Downconverter(rate_hz=capture.rate_hz, carrier_hz=rel_hz,
+                       is_complex=capture.is_complex)
+    parts = []
+    for block in capture.blocks():
+        parts.append(dc.process(block[:, channel]))
+        if progress is not None:
+            progress(block.shape[0])
+    parts.append(dc.flush())
+    samples = np.concatenate(parts)
+    n_keep = int(math.ceil((capture.duration_s - dc.start_s) * dc.out_rate_hz))
+    return Baseband(samples=samples[: max(n_keep, 0)], rate_hz=dc.out_rate_hz,
+                    start_s=dc.start_s, carrier_hz=float(carrier_hz), channel=channel,
+                    duration_s=capture.duration_s, half_band_hz=BASEBAND_HALF_BAND_HZ)
+
+
+def fine_offset_hz(baseband: Baseband, *, max_offset_hz: float) -> float:
+    """Residual carrier offset in a baseband, from a fine Welch spectrum, Hz.
+
+    The keyed carrier's mean spectrum peaks at its frequency; the peak within
+    ``±max_offset_hz`` is interpolated on log power [1]_.
+    """
+    from scipy import signal
+
+    z = baseband.samples
+    nper = int(min(z.size, 2 ** math.ceil(math.log2(baseband.rate_hz * 1.0))))
+    if nper < 32:
+        return 0.0
+    f, p = signal.welch(z, fs=baseband.rate_hz, nperseg=nper, return_onesided=False,
+                        detrend=False)
+    f, p = np.fft.fftshift(f), np.fft.fftshift(p)
+    inside = np.abs(f) <= max_offset_hz
+    if not inside.any():
+        return 0.0
+    idx = np.flatnonzero(inside)
+    b = int(idx[np.argmax(p[idx])])
+    return float(f[b] + _peak_offset(p, b) * (f[1] - f[0]))
+
+
+def shift(baseband: Baseband, offset_hz: float) -> Baseband:
+    """The same baseband with ``offset_hz`` moved to 0 Hz."""
+    if offset_hz == 0.0:
+        return baseband
+    n = np.arange(baseband.samples.size)
+    t_s = baseband.start_s + n / baseband.rate_hz
+    lo = np.exp(-2j * np.pi * offset_hz * t_s).astype(np.complex64)
+    return Baseband(samples=baseband.samples * lo, rate_hz=baseband.rate_hz,
+                    start_s=baseband.start_s, carrier_hz=baseband.carrier_hz + offset_hz,
+                    channel=baseband.channel, duration_s=baseband.duration_s,
+                    half_band_hz=baseband.half_band_hz)
+
+
+# ---------------------------------------------------------------------------------------
+# The envelope
+
+
+@dataclass(frozen=True)
+class Envelope:
+    """Magnitude of the baseband after a moving-average (matched) filter."""
+
+    magnitude: np.ndarray  # shape (n,), float64, full-scale amplitude units
+    rate_hz: float
+    start_s: float  # time of magnitude[0], s, the filter's delay removed
+    filter_s: float  # length of the moving average, s
+    noise_bandwidth_hz: float  # equivalent noise bandwidth of the whole chain, Hz
+    carrier_hz: float
+    source: str
+    # noise alone, per sample: the Rayleigh parameter the magnitude would have, measured
+    # in the flat passband away from the carrier (see noise_density); None if unknown
+    noise_sigma: np.ndarray | None = field(default=None, repr=False)
+
+    @property
+    def time_s(self) -> np.ndarray:
+        """Time of each sample, s."""
+        return self.start_s + np.arange(self.magnitude.size) / self.rate_hz
+
+
+def moving_average(z: np.ndarray, n: int) -> np.ndarray:
+    """Centred moving average of n samples (same length; the ends see fewer)."""
+    if n <= 1:
+        return z.astype(np.complex128)
+    c = np.concatenate([[0], np.cumsum(z.astype(np.complex128))])
+    half = n // 2
+    lo = np.clip(np.arange(z.size) - half, 0, z.size)
+    hi = np.clip(np.arange(z.size) - half + n, 0, z.size)
+    return (c[hi] - c[lo]) / n
+
+
+def noise_bandwidth_hz(n: int, rate_hz: float) -> float:
+    """Equivalent noise bandwidth of an n-sample moving average, Hz: rate / n.
+
+    For a filter normalised to unity gain at 0 Hz, the noise power it passes from a
+    white complex input of density N0 is N0 * B with B = rate * sum(h**2) (common
+    practice); for h = 1/n that is rate / n.
+    """
+    return rate_hz / max(n, 1)
+
+
+#: Offsets from the carrier where noise_density measures the noise, Hz.
+NOISE_BAND_HZ = (100.0, 0.9 * BASEBAND_HALF_BAND_HZ)
+
+
+def noise_density(baseband: Baseband, *, smooth_s: float = 2.0) -> np.ndarray:
+    """Two-sided noise density of a baseband at each sample, full scale² per Hz.
+
+    The band ``100 Hz < |f| < 225 Hz`` around the carrier lies inside the decimation
+    chain's flat passband and outside the keying sidebands (those of a 50 WPM dot fall
+    by 1/f² past 42 Hz), so its mean power over a moving window of ``smooth_s``,
+    divided by its width, measures the noise density whatever the keying. Strong
+    signals raise it by their sidebands, which only errs on the safe side.
+    """
+    z = baseband.samples
+    n = z.size
+    if n < 16:
+        return np.zeros(n)
+    spec = np.fft.fft(z.astype(np.complex128))
+    f = np.abs(np.fft.fftfreq(n, 1.0 / baseband.rate_hz))
+    lo, hi = NOISE_BAND_HZ
+    hi = min(hi, 0.45 * baseband.rate_hz)
+    band = (f > lo) & (f < hi)
+    if not band.any():
+        return np.zeros(n)
+    y = np.fft.ifft(np.where(band, spec, 0.0))
+    power = y.real**2 + y.imag**2
+    width_hz = 2.0 * (hi - lo)
+    k = max(1, int(round(smooth_s * baseband.rate_hz)))
+    return moving_average(power, k).real / width_hz
+
+
+def envelope(baseband: Baseband, *, filter_s: float, source: str = "",
+             density: np.ndarray | None = None) -> Envelope:
+    """Matched envelope: moving average over ``filter_s`` then magnitude.
+
+    Parameters
+    ----------
+    baseband : Baseband
+    filter_s : float
+        Length of the moving average, s. For a mark of length T, the filter matched to
+        it is a moving average of length T (the matched filter for a rectangular pulse);
+        shorter keeps the edges sharper at some loss of SNR.
+    density : ndarray, optional
+        :func:`noise_density` of this baseband, when already computed.
+
+    Returns
+    -------
+    Envelope
+        At the baseband rate; noise bandwidth ``rate / n`` for n samples.
+    """
+    n = max(1, int(round(filter_s * baseband.rate_hz)))
+    y = moving_average(baseband.samples, n)
+    bw_hz = noise_bandwidth_hz(n, baseband.rate_hz)
+    if density is None:
+        density = noise_density(baseband)
+    # complex noise of variance N0 * B has a Rayleigh magnitude with sigma² = N0 B / 2
+    sigma = np.sqrt(density * bw_hz / 2.0)
+    return Envelope(magnitude=np.abs(y), rate_hz=baseband.rate_hz, start_s=baseband.start_s,
+                    filter_s=n / baseband.rate_hz, noise_bandwidth_hz=bw_hz,
+                    carrier_hz=baseband.carrier_hz, source=source, noise_sigma=sigma)

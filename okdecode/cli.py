@@ -1,0 +1,192 @@
+"""The ``okdecode`` command line (the only importer of click).
+
+Each command works file by file: an :class:`~okdecode.errors.OkDecodeError` becomes one
+line on stderr naming the file, the other files go on, and the exit status is 2 when
+any input was bad. Heavy modules are imported inside the commands, so ``okdecode
+--help`` starts fast.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+
+import click
+
+from . import __version__
+from .errors import OkDecodeError
+
+_CONTEXT = {"help_option_names": ["-h", "--help"], "max_content_width": 100}
+
+
+def fail_line(source: str, err: BaseException) -> str:
+    """One line for an error: okdecode's own as they are, anything else flagged."""
+    if isinstance(err, OkDecodeError):
+        return str(err)
+    return f"{source}: unexpected {type(err).__name__} ({err}); please report this"
+
+
+def _echo_err(line: str) -> None:
+    click.echo(f"okdecode: {line}", err=True)
+
+
+class Progress:
+    """A one-line progress count on stderr when it is a terminal; silent otherwise."""
+
+    def __init__(self, label: str, total: int | None, *, enabled: bool | None = None):
+        self.label, self.total, self.done = label, total, 0
+        self.enabled = sys.stderr.isatty() if enabled is None else enabled
+        self._shown = -1
+
+    def __call__(self, n: int) -> None:
+        if not self.enabled or not self.total:
+            return
+        self.done += n
+        # two passes over the samples (search, then tuning): count to 2 * total
+        pct = int(100 * self.done / (2 * self.total))
+        if pct != self._shown:
+            self._shown = pct
+            click.echo(f"\r{self.label}: {min(pct, 100):3d} %", err=True, nl=False)
+
+    def close(self) -> None:
+        if self.enabled and self._shown >= 0:
+            click.echo("\r" + " " * (len(self.label) + 8) + "\r", err=True, nl=False)
+
+
+@click.group(context_settings=_CONTEXT)
+@click.version_option(__version__, prog_name="okdecode")
+def main() -> None:
+    """Receive and decode on-off keyed recordings: audio, I/Q and oscilloscope traces."""
+
+
+def _fmt(v, spec: str, unit: str = "") -> str:
+    return "n/a" if v is None else f"{v:{spec}}{unit}"
+
+
+def summary(result) -> str:
+    """A short human summary of a Reception."""
+    d = result.to_dict()
+    t = d["timing"]
+    lines = [d["file"], f"  text     {d['text'] or '(nothing decoded)'}"]
+    if d["carrier_hz"] is not None:
+        chan = f" (channel {d['channel']})" if d["channel"] is not None else ""
+        lines.append(
+            f"  carrier  {_fmt(d['carrier_hz'], '.1f', ' Hz')}{chan}   speed "
+            f"{_fmt(d['wpm'], '.1f', ' WPM')}"
+            + (f" (Farnsworth {d['farnsworth_wpm']:.1f} WPM overall)"
+               if d["farnsworth_wpm"] else ""))
+        lines.append(
+            f"  level    C/N0 {_fmt(d['cn0_dbhz'], '.1f', ' dB-Hz')}   SNR "
+            f"{_fmt(d['snr_db'], '.1f', ' dB')} in {_fmt(d['snr_bandwidth_hz'], '.1f', ' Hz')}"
+            f"   signal {_fmt(d['signal_dbfs'], '.1f', ' dBFS')}")
+    if t["dot_ms"] is not None or t["dash_ms"] is not None:
+        lines.append(
+            f"  timing   dot {_fmt(t['dot_ms'], '.1f', ' ms')}   dash "
+            f"{_fmt(t['dash_ms'], '.1f', ' ms')}   dash/dot {_fmt(t['dash_dot_ratio'], '.2f')}"
+            f"   gaps {_fmt(t['element_gap_ms'], '.0f')}/{_fmt(t['char_gap_ms'], '.0f')}/"
+            f"{_fmt(t['word_gap_ms'], '.0f')} ms   jitter {_fmt(t['jitter_ms'], '.1f', ' ms')}")
+    if d["n_unknown"]:
+        lines.append(f"  unknown  {d['n_unknown']} character(s) shown as '*'")
+    for note in d["notes"]:
+        lines.append(f"  note     {note}")
+    for w in d["warnings"]:
+        lines.append(f"  warning  {w}")
+    return "\n".join(lines)
+
+
+def _reader_options(rate, iq_format, center_hz) -> dict:
+    out = {}
+    if rate is not None:
+        out["rate_hz"] = rate
+    if iq_format is not None:
+        out["iq_format"] = iq_format
+    if center_hz is not None:
+        out["center_hz"] = center_hz
+    return out
+
+
+@main.command(context_settings=_CONTEXT)
+@click.argument("files", nargs=-1, required=True, type=click.Path())
+@click.option("--carrier", type=float, default=None, metavar="HZ",
+              help="Carrier frequency (absolute). Default: found from the spectrum.")
+@click.option("--channel", type=int, default=None, metavar="N",
+              help="Channel index. Default: the channel with the strongest keyed signal.")
+@click.option("--wpm", type=float, default=None, metavar="N",
+              help="Sending speed, if known. Default: measured.")
+@click.option("--decoder", default="threshold", show_default=True,
+              help="Decision method.")
+@click.option("--rate", type=float, default=None, metavar="HZ",
+              help="Sample rate, for raw I/Q, NumPy arrays and traces without a time column.")
+@click.option("--iq-format", default=None, metavar="TYPE",
+              help="Raw I/Q sample type by SigMF name: cu8, ci8, ci16_le, cf32_le, ...")
+@click.option("--center-hz", type=float, default=None, metavar="HZ",
+              help="I/Q: the frequency of baseband 0 Hz, so reported frequencies are absolute.")
+@click.option("--json", "as_json", is_flag=True,
+              help="One JSON object per file (JSON Lines) instead of the summary.")
+def decode(files, carrier, channel, wpm, decoder, rate, iq_format, center_hz, as_json):
+    """Decode keyed recordings and report text, strength and timing."""
+    from .capture import open_capture
+    from .receiver import decode_capture
+
+    status = 0
+    for path in files:
+        progress = Progress(path, None)
+        try:
+            capture = open_capture(path, **_reader_options(rate, iq_format, center_hz))
+            progress.total = capture.n_samples
+            result = decode_capture(capture, carrier_hz=carrier, channel=channel, wpm=wpm,
+                                    decoder=decoder, progress=progress)
+        except Exception as err:  # noqa: BLE001 - one line per file, the others go on
+            progress.close()
+            _echo_err(fail_line(path, err))
+            status = 2
+            continue
+        progress.close()
+        if as_json:
+            click.echo(json.dumps(result.to_dict(), ensure_ascii=False))
+        else:
+            click.echo(summary(result))
+    sys.exit(status)
+
+
+@main.command(context_settings=_CONTEXT)
+@click.argument("out", type=click.Path())
+@click.option("--text", "message", required=True, help="The message to key.")
+@click.option("--wpm", type=float, default=20.0, show_default=True, help="Overall speed, WPM.")
+@click.option("--char-wpm", type=float, default=None,
+              help="Character speed for Farnsworth spacing (above --wpm).")
+@click.option("--carrier", type=float, default=700.0, show_default=True, metavar="HZ")
+@click.option("--rate", type=float, default=8000.0, show_default=True, metavar="HZ")
+@click.option("--cn0", type=float, default=None, metavar="DBHZ",
+              help="Carrier to noise density, dB-Hz. Default: no noise.")
+@click.option("--jitter", type=float, default=0.0, show_default=True,
+              help="Relative spread of element lengths.")
+@click.option("--dash-dot-ratio", type=float, default=3.0, show_default=True)
+@click.option("--weight", type=float, default=0.0, show_default=True,
+              help="Fraction of a dot added to marks and taken from spaces.")
+@click.option("--fading-db", type=float, default=0.0, show_default=True)
+@click.option("--drift-hz", type=float, default=0.0, show_default=True)
+@click.option("--hum-db", type=float, default=None, help="Mains hum level re the carrier, dB.")
+@click.option("--clicks-per-s", type=float, default=0.0, show_default=True)
+@click.option("--iq", is_flag=True, help="Complex baseband (write a .npy file).")
+@click.option("--seed", type=int, default=0, show_default=True)
+def synth(out, message, wpm, char_wpm, carrier, rate, cn0, jitter, dash_dot_ratio, weight,
+          fading_db, drift_hz, hum_db, clicks_per_s, iq, seed):
+    """Write a synthetic keyed recording (WAV, FLAC, OGG or NumPy .npy)."""
+    from .synth import synth_file
+
+    try:
+        truth = synth_file(out, message, wpm=wpm, char_wpm=char_wpm, carrier_hz=carrier,
+                           rate_hz=rate, cn0_dbhz=cn0, jitter=jitter,
+                           dash_dot_ratio=dash_dot_ratio, weight=weight, fading_db=fading_db,
+                           drift_hz=drift_hz, hum_db=hum_db, clicks_per_s=clicks_per_s,
+                           iq=iq, seed=seed)
+    except Exception as err:  # noqa: BLE001
+        _echo_err(fail_line(out, err))
+        sys.exit(2)
+    click.echo(f"{out}: {truth.text!r}, {truth.duration_s:.2f} s at {rate:g} Hz")
+
+
+# Commands of later stages register below, each in its own block.
+# --- verify ---
+# --- batch ---

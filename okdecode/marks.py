@@ -1,0 +1,305 @@
+"""Stage 2: Envelope -> Marks. Noise floor, mark level, adaptive threshold, hysteresis.
+
+Method
+------
+The envelope is cut into windows of ``window_s`` (half overlapping). In each window the
+noise floor is measured from the low part of the magnitude distribution: after the
+moving average, the magnitude of noise alone is Rayleigh distributed, so its p-quantile
+is ``sigma * sqrt(-2 ln(1 - p))`` [1]_, and the 20 % quantile of a window whose spaces
+fill at least half of it estimates ``sigma`` within a few per cent. The floor is then
+smoothed by a running minimum-of-medians across neighbouring windows, because a window
+full of key-down would otherwise read the mark as noise.
+
+A window holds a mark level when enough of its samples stand clear of the noise
+(above ``sigma * sqrt(2 ln(1/p_fa))``, a Rayleigh false-alarm rate of ``p_fa``); the
+level is the median of those samples. Windows without one borrow the level of the
+nearest windows that had one, so a fade is followed and a pause keeps the last level.
+
+The threshold sits halfway between the mean noise magnitude ``sigma * sqrt(pi/2)`` and
+the mark level, in magnitude (a linear ramp through the moving average crosses it at the
+true edge, so marks keep their length), and never below the Rayleigh false-alarm level.
+The decision has hysteresis of ``±hysteresis_db`` around it (a Schmitt trigger, common
+practice). Levels are interpolated linearly between window centres.
+
+References
+----------
+.. [1] J. G. Proakis and M. Salehi, "Digital Communications", 5th ed., McGraw-Hill,
+   2008, section 2.3 (Rayleigh and Rice distributions).
+.. [2] R. Lyons, "Digital envelope detection: The good, the bad, and the ugly",
+   IEEE Signal Processing Magazine 34(4), 2017.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from .baseband import Envelope
+
+
+@dataclass(frozen=True)
+class Levels:
+    """Noise floor, mark level and threshold as they moved, at window centres."""
+
+    time_s: np.ndarray  # shape (k,), window centres, s
+    noise: np.ndarray  # shape (k,), mean noise magnitude sigma*sqrt(pi/2), full scale
+    mark: np.ndarray  # shape (k,), mark magnitude (nan where never seen), full scale
+    threshold: np.ndarray  # shape (k,), full scale
+    sigma: np.ndarray  # shape (k,), Rayleigh parameter of the noise
+
+
+@dataclass(frozen=True)
+class Marks:
+    """Key-down intervals found in an envelope."""
+
+    start_s: np.ndarray  # shape (n,), seconds from the start of the capture, sorted
+    end_s: np.ndarray  # shape (n,), end_s > start_s
+    level: np.ndarray  # shape (n,), mean envelope magnitude over each mark, full scale
+    peak_snr_db: np.ndarray  # shape (n,), mark level over the local noise floor, dB
+    levels: Levels
+    source: str  # the file these came from ("<array>" for arrays), for messages
+
+    @property
+    def n_marks(self) -> int:
+        return int(self.start_s.size)
+
+    def durations_s(self) -> tuple[np.ndarray, np.ndarray]:
+        """Mark lengths and the lengths of the spaces between them, s."""
+        return self.end_s - self.start_s, self.start_s[1:] - self.end_s[:-1]
+
+
+def _window_quantiles(x: np.ndarray, win: int, qs: list[float]) -> tuple[np.ndarray, ...]:
+    hop = max(1, win // 2)
+    n_win = max(1, 1 + (x.size - win) // hop) if x.size >= win else 1
+    starts = np.minimum(np.arange(n_win) * hop, max(x.size - win, 0))
+    if x.size >= win:
+        frames = np.lib.stride_tricks.sliding_window_view(x, win)[starts]
+    else:
+        frames = x[None, :]
+    q = np.quantile(frames, qs, axis=1)
+    centres = starts + min(win, x.size) / 2.0
+    return centres, starts, q, frames
+
+
+def levels(envelope: Envelope, *, window_s: float, p_fa: float = 1e-3,
+           noise_mask: np.ndarray | None = None) -> Levels:
+    """Track noise floor and mark level through an envelope (see the module notes).
+
+    Parameters
+    ----------
+    envelope : Envelope
+    window_s : float
+        Window length, s; about 25 dots holds marks and spaces both.
+    p_fa : float
+        Rayleigh exceedance probability that defines "clear of the noise".
+    noise_mask : ndarray of bool, optional
+        Samples known to hold noise alone (the interiors of spaces of an earlier
+        decision). Each window's ``sigma`` is then ``sqrt(mean(x**2) / 2)`` over them,
+        the maximum-likelihood Rayleigh estimate, instead of the quantile estimate.
+    """
+    x = envelope.magnitude
+    rate = envelope.rate_hz
+    win = max(8, int(round(window_s * rate)))
+    centres, starts, q, frames = _window_quantiles(x, win, [0.2])
+    q20 = q[0]
+    fraction_noise = np.ones(centres.size)
+    for _ in range(2):
+        # the 20 % quantile of a window is the (0.2 / f) quantile of its noise when a
+        # fraction f of it is key-up; f comes from the previous threshold
+        p = np.clip(0.2 / fraction_noise, 0.2, 0.9)
+        sigma_raw = q20 / np.sqrt(-2.0 * np.log(1.0 - p))
+        # a window full of key-down reads its mark as noise: take, around each window,
+        # the smallest of the medians of three-window runs, over about seven windows
+        sigma = _min_of_medians(sigma_raw)
+        if noise_mask is not None:
+            sigma = _masked_sigma(frames, noise_mask, starts, win, fallback=sigma)
+        if envelope.noise_sigma is not None:
+            # each estimate errs high in its own way (missed marks in the spaces; strong
+            # sidebands in the noise band), so the smaller one is kept
+            measured = envelope.noise_sigma[np.minimum(starts + win // 2, x.size - 1)]
+            sigma = np.where(measured > 0, np.minimum(sigma, measured), sigma)
+        clear = sigma[:, None] * math.sqrt(2.0 * math.log(1.0 / p_fa))
+        above = frames > clear
+        n_above = above.sum(axis=1)
+        min_count = max(3, int(0.03 * frames.shape[1]))
+        mark = np.full(centres.size, np.nan)
+        for i in np.flatnonzero(n_above >= min_count):
+            # the upper quartile: the plateau of dashes, not the flanks of the filter
+            mark[i] = np.quantile(frames[i][above[i]], 0.75)
+        mark_filled = _fill_nearest(mark)
+        noise = sigma * math.sqrt(math.pi / 2.0)
+        floor_thr = clear[:, 0]
+        if np.isnan(mark_filled).all():
+            threshold = floor_thr * 1.5
+            break
+        threshold = np.maximum(noise + 0.5 * (mark_filled - noise), floor_thr)
+        fraction_noise = np.maximum((frames < threshold[:, None]).mean(axis=1), 0.2)
+    t_s = envelope.start_s + centres / rate
+    return Levels(time_s=t_s, noise=noise, mark=mark_filled, threshold=threshold, sigma=sigma)
+
+
+def _masked_sigma(frames, mask, starts, win, *, fallback):
+    if mask.size < win:
+        m = mask[None, :]
+    else:
+        m = np.lib.stride_tricks.sliding_window_view(mask, win)[starts]
+    count = m.sum(axis=1)
+    power = np.where(m, frames, 0.0) ** 2
+    sigma = np.full(starts.size, np.nan)
+    ok = count >= 16
+    sigma[ok] = np.sqrt(power[ok].sum(axis=1) / count[ok] / 2.0)
+    if not ok.any():
+        return fallback
+    return _fill_nearest(sigma)
+
+
+def _min_of_medians(v: np.ndarray) -> np.ndarray:
+    if v.size < 3:
+        return np.full(v.size, np.min(v)) if v.size else v
+    pad = np.pad(v, 1, mode="edge")
+    med3 = np.median(np.lib.stride_tricks.sliding_window_view(pad, 3), axis=1)
+    pad = np.pad(med3, 3, mode="edge")
+    return np.min(np.lib.stride_tricks.sliding_window_view(pad, 7), axis=1)
+
+
+def _fill_nearest(v: np.ndarray) -> np.ndarray:
+    ok = np.flatnonzero(~np.isnan(v))
+    if ok.size == 0:
+        return v.copy()
+    idx = np.arange(v.size)
+    return np.interp(idx, ok, v[ok])
+
+
+def find(envelope: Envelope, *, window_s: float = 2.0, hysteresis_db: float = 1.0,
+         min_mark_s: float = 0.0, min_space_s: float = 0.0, p_fa: float = 1e-3,
+         levels_: Levels | None = None) -> Marks:
+    """Decide key-down and key-up with an adaptive threshold and hysteresis.
+
+    Parameters
+    ----------
+    envelope : Envelope
+    window_s : float
+        Level-tracking window, s.
+    hysteresis_db : float
+        The decision turns on above ``threshold * 10**(h/20)`` and off below
+        ``threshold / 10**(h/20)``, dB.
+    min_mark_s, min_space_s : float
+        Glitch suppression, s: spaces shorter than ``min_space_s`` are bridged first,
+        then marks shorter than ``min_mark_s`` are dropped (give both relative to the
+        dot length once it is known).
+    p_fa : float
+        Rayleigh exceedance probability for the lowest threshold.
+    levels_ : Levels, optional
+        Levels already tracked on this envelope.
+
+    Returns
+    -------
+    Marks
+        Edges are placed where the magnitude crosses the threshold, by linear
+        interpolation between samples.
+    """
+    if levels_ is None:
+        lv = levels(envelope, window_s=window_s, p_fa=p_fa)
+        first = _decide(envelope, lv, hysteresis_db)
+        if first is not None and first[0].size:
+            # measure the noise again where the first decision saw space, away from
+            # the marks by half the filter, so no mark's flank is taken for noise
+            guard_s = 0.5 * envelope.filter_s + 2.0 / envelope.rate_hz
+            gap_start = np.concatenate([[-np.inf], first[1]])
+            gap_end = np.concatenate([first[0], [np.inf]])
+            mask = _inside(envelope.time_s, gap_start + guard_s, gap_end - guard_s)
+            lv = levels(envelope, window_s=window_s, p_fa=p_fa, noise_mask=mask)
+    else:
+        lv = levels_
+    decided = _decide(envelope, lv, hysteresis_db)
+    empty = np.empty(0)
+    if decided is None:
+        return Marks(empty, empty, empty, empty, lv, envelope.source)
+    start_s, end_s = _suppress(*decided, min_mark_s=min_mark_s, min_space_s=min_space_s)
+    lvl, snr = _mark_stats(envelope.magnitude, envelope.time_s, start_s, end_s, lv,
+                           envelope.rate_hz)
+    return Marks(start_s=start_s, end_s=end_s, level=lvl, peak_snr_db=snr, levels=lv,
+                 source=envelope.source)
+
+
+def _inside(t: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Samples of t inside any [lo, hi] (sorted, disjoint intervals)."""
+    i0 = np.searchsorted(t, lo)
+    i1 = np.searchsorted(t, hi)
+    delta = np.zeros(t.size + 1, dtype=np.int64)
+    ok = i1 > i0
+    np.add.at(delta, i0[ok], 1)
+    np.add.at(delta, i1[ok], -1)
+    return np.cumsum(delta[:-1]) > 0
+
+
+def _decide(envelope: Envelope, lv: Levels, hysteresis_db: float):
+    """Schmitt-trigger decision; mark (start_s, end_s) arrays, or None."""
+    x = envelope.magnitude
+    if x.size < 2 or np.isnan(lv.mark).all():
+        return None
+    t = envelope.time_s
+    thr = np.interp(t, lv.time_s, lv.threshold)
+    h = 10 ** (hysteresis_db / 20.0)
+    state = np.full(x.size, -1, dtype=np.int8)
+    state[x > thr * h] = 1
+    state[x < thr / h] = 0
+    known = np.flatnonzero(state >= 0)
+    if known.size == 0:
+        return None
+    # hold the last decided state through the hysteresis band
+    fill = np.maximum.accumulate(np.where(state >= 0, np.arange(x.size), 0))
+    on = state[fill] == 1
+    on[: known[0]] = state[known[0]] == 1
+    edges = np.flatnonzero(np.diff(on.astype(np.int8)))
+    rises = edges[on[edges + 1]]
+    falls = edges[~on[edges + 1]]
+    if on[0]:
+        rises = np.concatenate([[-1], rises])
+    if on[-1]:
+        falls = np.concatenate([falls, [x.size - 1]])
+    return (_crossing_s(x, thr, rises, t, envelope.rate_hz),
+            _crossing_s(x, thr, falls, t, envelope.rate_hz))
+
+
+def _crossing_s(x, thr, idx, t, rate):
+    """Time where x crosses thr between samples idx and idx + 1."""
+    out = np.empty(idx.size)
+    inner = (idx >= 0) & (idx < x.size - 1)
+    i = idx[inner]
+    a, b = x[i] - thr[i], x[i + 1] - thr[i + 1]
+    frac = np.clip(np.where(a != b, a / (a - b), 0.5), 0.0, 1.0)
+    out[inner] = t[i] + frac / rate
+    out[idx < 0] = t[0]
+    out[idx >= x.size - 1] = t[-1]
+    return out
+
+
+def _suppress(start_s, end_s, *, min_mark_s, min_space_s):
+    if start_s.size and min_space_s > 0:
+        gaps = start_s[1:] - end_s[:-1]
+        keep = np.concatenate([[True], gaps >= min_space_s])
+        # a bridged space joins a mark to the one before it
+        group = np.cumsum(keep) - 1
+        start_s = start_s[keep]
+        end_s = np.maximum.reduceat(end_s, np.flatnonzero(keep)) if end_s.size else end_s
+        del group
+    if start_s.size and min_mark_s > 0:
+        keep = (end_s - start_s) >= min_mark_s
+        start_s, end_s = start_s[keep], end_s[keep]
+    return start_s, end_s
+
+
+def _mark_stats(x, t, start_s, end_s, lv, rate):
+    if start_s.size == 0:
+        return np.empty(0), np.empty(0)
+    i0 = np.clip(np.searchsorted(t, start_s), 0, x.size - 1)
+    i1 = np.clip(np.searchsorted(t, end_s), 0, x.size)
+    i1 = np.maximum(i1, i0 + 1)
+    c = np.concatenate([[0.0], np.cumsum(x)])
+    level = (c[i1] - c[i0]) / (i1 - i0)
+    noise = np.interp((start_s + end_s) / 2, lv.time_s, lv.noise)
+    snr_db = 20 * np.log10(np.maximum(level, 1e-30) / np.maximum(noise, 1e-30))
+    return level, snr_db

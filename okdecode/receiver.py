@@ -1,0 +1,252 @@
+"""decode_array / decode_file: run the stages in order.
+
+capture -> search_carriers -> tune -> fine offset -> envelope -> marks -> symbols ->
+text -> report. The envelope is made first with a few filter lengths; the one whose
+decode explains the durations best gives the speed, and the envelope is then made
+again with the moving average matched to the dot (re-tuning to the speed).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from os import PathLike
+
+import numpy as np
+
+from . import baseband as bb
+from . import marks as mk
+from . import report
+from . import symbols as sy
+from . import text as tx
+from .capture import Capture, from_array, open_capture
+from .errors import ParameterError
+
+DECODERS = ("threshold",)
+#: Filter lengths tried before the speed is known, s (they suit about 8 to 60 WPM).
+FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096)
+
+
+@dataclass(frozen=True)
+class Options:
+    """Decode options, checked once."""
+
+    carrier_hz: float | None = None
+    channel: int | None = None
+    wpm: float | None = None
+    decoder: str = "threshold"
+
+    @classmethod
+    def checked(cls, source: str, *, carrier_hz=None, channel=None, wpm=None,
+                decoder="threshold") -> Options:
+        if carrier_hz is not None:
+            carrier_hz = _number(source, "carrier", carrier_hz, "Hz")
+            if carrier_hz <= 0 and carrier_hz != carrier_hz:  # pragma: no cover
+                raise ParameterError(source, "carrier is not a number")
+        if channel is not None:
+            if isinstance(channel, bool) or not isinstance(channel, (int, np.integer)) or (
+                    channel < 0):
+                raise ParameterError(source, f"channel {channel!r}",
+                                     expected="a channel index 0, 1, ...")
+            channel = int(channel)
+        if wpm is not None:
+            wpm = _number(source, "speed", wpm, "WPM")
+            if not 1.0 <= wpm <= 100.0:
+                raise ParameterError(source, f"speed {wpm:g} WPM", expected="1 to 100 WPM")
+        if decoder not in DECODERS:
+            raise ParameterError(source, f"decoder {decoder!r}", expected=" or ".join(DECODERS))
+        return cls(carrier_hz=carrier_hz, channel=channel, wpm=wpm, decoder=decoder)
+
+
+def _number(source: str, what: str, value, unit: str) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        v = math.nan
+    if not math.isfinite(v):
+        raise ParameterError(source, f"{what} {value!r} {unit}", expected="a finite number")
+    return v
+
+
+def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
+                   channel: int | None = None, wpm: float | None = None,
+                   decoder: str = "threshold", progress=None) -> report.Reception:
+    """Decode an opened capture. See :func:`decode_file` for the options."""
+    opts = Options.checked(capture.source, carrier_hz=carrier_hz, channel=channel, wpm=wpm,
+                           decoder=decoder)
+    warnings: list[str] = []
+    notes: list[str] = list(capture.notes)
+    if opts.channel is not None and opts.channel >= capture.n_channels:
+        raise ParameterError(capture.source, f"channel {opts.channel} does not exist",
+                             expected=f"0 to {capture.n_channels - 1}")
+    spectrum = None
+    carrier = opts.carrier_hz
+    chan = opts.channel
+    if carrier is None or (chan is None and capture.n_channels > 1):
+        spectrum = bb.search_carriers(capture, progress=progress)
+        found = [c for c in spectrum.carriers if chan is None or c.channel == chan]
+        if carrier is not None:
+            near = [c for c in found if abs(c.frequency_hz - carrier) < 3 * spectrum.bin_hz]
+            found = near or found
+        if not found:
+            if carrier is None:
+                warnings.append("no keyed signal found")
+                return report.empty(file=capture.source, duration_s=capture.duration_s,
+                                    rate_hz=capture.rate_hz, channel=chan,
+                                    decoder=opts.decoder, warnings=warnings, notes=notes,
+                                    spectrum=spectrum)
+            chan = 0 if chan is None else chan
+        else:
+            best = found[0]
+            if chan is None:
+                chan = best.channel
+                if capture.n_channels > 1:
+                    notes.append(f"channel {chan} has the strongest keyed signal")
+            if carrier is None:
+                carrier = best.frequency_hz
+            if len(found) > 1:
+                others = ", ".join(f"{c.frequency_hz:.0f}" for c in found[1:4])
+                notes.append(f"other keyed carriers at {others} Hz")
+    chan = 0 if chan is None else chan
+    base = bb.tune(capture, carrier, channel=chan, progress=progress)
+    search_bin = spectrum.bin_hz if spectrum is not None else 0.0
+    max_off = max(1.0 * search_bin, 25.0) if opts.carrier_hz is None else 40.0
+    base = bb.shift(base, bb.fine_offset_hz(base, max_offset_hz=max_off))
+    return _decode_baseband(base, capture, opts, warnings, notes, spectrum)
+
+
+def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warnings, notes,
+                     spectrum) -> report.Reception:
+    source = capture.source
+    best = None
+    first = (1.2 / opts.wpm,) if opts.wpm else FIRST_FILTERS_S
+    for filter_s in first:
+        trial = _run(base, source, filter_s=filter_s, wpm=opts.wpm)
+        if best is None or trial[0] > best[0]:
+            best = trial
+    assert best is not None
+    score, env, found, syms, decoded = best
+    if syms.dot_s is not None:
+        # re-tune: the moving average matched to the dot, then once more if it moved
+        for _ in range(2):
+            dot = syms.dot_s
+            trial = _run(base, source, filter_s=dot, wpm=opts.wpm)
+            if trial[3].dot_s is None:
+                break
+            score, env, found, syms, decoded = trial
+            if abs(syms.dot_s / dot - 1) < 0.1:
+                break
+    if not decoded.characters:
+        warnings.append("no keyed signal found")
+        return report.empty(file=source, duration_s=capture.duration_s,
+                            rate_hz=capture.rate_hz, channel=base.channel,
+                            decoder=opts.decoder, warnings=warnings, notes=notes,
+                            spectrum=spectrum, carrier_hz=base.carrier_hz, baseband=base,
+                            envelope=env, marks=found)
+    level = report.measure(base, found, dot_s=syms.dot_s or env.filter_s,
+                           detection_bandwidth_hz=env.noise_bandwidth_hz,
+                           is_complex=capture.is_complex)
+    if decoded.n_unknown:
+        warnings.append(f"{decoded.n_unknown} pattern(s) not in the ITU-R M.1677-1 table")
+    if level.snr_db is not None and level.snr_db < 6.0:
+        warnings.append(f"weak signal: SNR {level.snr_db:.1f} dB in "
+                        f"{level.snr_bandwidth_hz:.0f} Hz; expect errors")
+    if syms.farnsworth:
+        notes.append(f"Farnsworth spacing: characters at {syms.wpm:.1f} WPM, "
+                     f"overall {syms.farnsworth_wpm:.1f} WPM")
+    return report.assemble(file=source, decoded=decoded, symbols=syms, marks=found,
+                           envelope=env, baseband=base, level=level,
+                           duration_s=capture.duration_s, rate_hz=capture.rate_hz,
+                           channel=base.channel, decoder=opts.decoder, warnings=warnings,
+                           notes=notes, spectrum=spectrum)
+
+
+def _run(base: bb.Baseband, source: str, *, filter_s: float, wpm: float | None):
+    """One envelope, marks, symbols and text at a filter length, with a fit score."""
+    env = bb.envelope(base, filter_s=filter_s, source=source)
+    unit = filter_s if wpm is None else 1.2 / wpm
+    found = mk.find(env, window_s=max(1.0, 25 * unit), min_mark_s=0.4 * unit,
+                    min_space_s=0.4 * unit)
+    syms = sy.classify(found, wpm=wpm)
+    if syms.dot_s is not None and found.n_marks:
+        # glitches are judged again against the dot now known
+        found = mk.find(env, window_s=max(1.0, 25 * syms.dot_s), min_mark_s=0.4 * syms.dot_s,
+                        min_space_s=0.4 * syms.dot_s, levels_=found.levels)
+        syms = sy.classify(found, wpm=wpm)
+    decoded = tx.decode(syms)
+    score = _fit_score(syms, decoded, filter_s)
+    return score, env, found, syms, decoded
+
+
+def _fit_score(syms: sy.Symbols, decoded: tx.Decoded, filter_s: float) -> float:
+    """How well a decode explains the marks: mean confidence of its characters.
+
+    A filter much longer than the dot smears the marks together, and one much shorter
+    lets noise through, so the decode that fits the code best marks the right length.
+    """
+    if not decoded.characters or syms.dot_s is None:
+        return -1.0
+    conf = np.array([c.confidence if c.char != tx.PLACEHOLDER else 0.0
+                     for c in decoded.characters])
+    mismatch = abs(math.log(syms.dot_s / filter_s))
+    # the mean, not the sum: noise let through a short filter makes many characters
+    # whose elements fit no class well
+    return float(conf.mean()) * math.exp(-0.5 * max(mismatch - math.log(2.5), 0.0))
+
+
+def decode_array(samples: np.ndarray, rate_hz: float, *, center_hz: float = 0.0,
+                 source: str = "<array>", **options) -> report.Reception:
+    """Decode samples held in memory.
+
+    Parameters
+    ----------
+    samples : ndarray, shape (n,) or (n, channels), real or complex
+        Real audio or trace samples, or complex I/Q baseband.
+    rate_hz : float
+        Sample rate, Hz.
+    center_hz : float
+        For I/Q: the frequency of baseband 0 Hz, Hz.
+    **options
+        As for :func:`decode_file`.
+    """
+    return decode_capture(from_array(samples, rate_hz, center_hz=center_hz, source=source),
+                          **options)
+
+
+def decode_file(path: str | PathLike, *, carrier_hz: float | None = None,
+                channel: int | None = None, wpm: float | None = None,
+                decoder: str = "threshold", progress=None, **reader_options
+                ) -> report.Reception:
+    """Decode one recording.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        The recording.
+    carrier_hz : float, optional
+        Carrier frequency, Hz (absolute); found from the spectrum when not given.
+    channel : int, optional
+        Channel index; default: the channel with the strongest keyed signal.
+    wpm : float, optional
+        Sending speed, WPM, when known.
+    decoder : str
+        ``"threshold"``.
+    progress : callable, optional
+        Called with the number of samples handled after each block.
+    **reader_options
+        Passed to the reader (rate, format, ...).
+
+    Returns
+    -------
+    Reception
+
+    Raises
+    ------
+    CaptureError
+        If the file cannot be read as a recording.
+    ParameterError
+        If an option is absurd.
+    """
+    capture = open_capture(path, **reader_options)
+    return decode_capture(capture, carrier_hz=carrier_hz, channel=channel, wpm=wpm,
+                          decoder=decoder, progress=progress)

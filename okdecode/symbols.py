@@ -1,0 +1,283 @@
+"""Stage 3: Marks -> Symbols. Dot length, speed, dot/dash and gap classes, Farnsworth.
+
+Method
+------
+*Unit.* The dot length ``u`` is first found by a grid search over 8 ms to 1.5 s for the
+``u`` that best explains all durations on a log scale: marks as 1 or 3 units, spaces as
+1 or 3 units or longer, with a capped squared error so that outliers (noise, pauses)
+weigh little. It is then refined from the start-to-start time of a dot and the space
+after it inside a character, which is 2 units whatever the keying weight or the
+threshold's bias (both lengthen the mark by as much as they shorten the space).
+
+*Speed.* ``wpm = 1.2 / u`` by the PARIS standard word of 50 units (common practice;
+ITU-R M.1677-1 gives the 1:3 and 1:3:7 ratios). Slow changes are followed by a running
+median of local unit estimates (11 elements), so classes are judged against the speed
+in force.
+
+*Classes.* Marks split into dots and dashes at the geometric mean of the two clusters
+found on log duration (2-means); spaces under 2 local units are element gaps, and the
+rest split into character and word gaps by 2-means on log duration, or, where only one
+cluster exists, by its length. Spaces longer than 20 units are pauses (word breaks).
+Character gaps longer than 4.5 units mean Farnsworth spacing; the overall speed then
+follows from J. Bloom's relation (QEX, 1990): a PARIS word at character speed ``c`` and
+overall speed ``s`` stretches its 19 units of character and word spacing to
+``t_a = (60 c - 37.2 s) / (s c)`` seconds, so ``s = 60 c / (t_a c + 37.2)``.
+
+*Confidence.* Each element's class is given a probability from its distance, in
+standard deviations of its cluster, to the decision boundary (a Gaussian model of
+timing error on log duration).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from .marks import Marks
+
+#: A space longer than this many units is a pause between transmissions.
+PAUSE_UNITS = 20.0
+ELEMENT, CHARACTER, WORD = 1, 3, 7
+
+
+def dot_s_from_wpm(wpm: float) -> float:
+    """Length of one unit (a dot) at a keying speed.
+
+    Parameters
+    ----------
+    wpm : float
+        Speed in words per minute, finite and > 0.
+
+    Returns
+    -------
+    float
+        Dot length, s.
+
+    Notes
+    -----
+    A dash is 3 units; the gaps are 1 unit inside a character, 3 between characters and
+    7 between words [1]_. Speed counts the word "PARIS", 50 units with its word gap
+    (common practice), so ``dot_s = 60 / (50 * wpm) = 1.2 / wpm``.
+
+    References
+    ----------
+    .. [1] ITU-R Recommendation M.1677-1, "International Morse code", 2009.
+
+    Examples
+    --------
+    >>> dot_s_from_wpm(20)
+    0.06
+    """
+    return 1.2 / wpm
+
+
+def farnsworth_wpm(char_wpm: float, char_gap_s: float) -> float:
+    """Overall speed of Farnsworth-spaced code from its character speed and gap.
+
+    Parameters
+    ----------
+    char_wpm : float
+        Speed of the characters themselves, WPM.
+    char_gap_s : float
+        Length of one (stretched) character gap, s.
+
+    Returns
+    -------
+    float
+        Overall speed, WPM, by J. Bloom, QEX 1990: ``t_a = 19 * char_gap / 3``,
+        ``s = 60 c / (t_a c + 37.2)``.
+
+    Examples
+    --------
+    >>> round(farnsworth_wpm(20.0, 3 * 0.06), 3)  # no stretch: overall = character speed
+    20.0
+    """
+    t_a = 19.0 * char_gap_s / 3.0
+    return 60.0 * char_wpm / (t_a * char_wpm + 37.2)
+
+
+@dataclass(frozen=True)
+class Symbols:
+    """Marks and spaces with their classes and the timing they imply."""
+
+    start_s: np.ndarray  # shape (n,), mark starts, s
+    end_s: np.ndarray  # shape (n,), mark ends, s
+    is_dash: np.ndarray  # shape (n,), bool
+    gap_class: np.ndarray  # shape (n - 1,), ELEMENT, CHARACTER or WORD
+    mark_confidence: np.ndarray  # shape (n,), probability the mark's class is right
+    gap_confidence: np.ndarray  # shape (n - 1,)
+    local_dot_s: np.ndarray  # shape (n,), tracked unit at each mark, s
+    dot_s: float | None  # the recording's unit, s; None with too few marks
+    dash_dot_ratio: float | None
+    farnsworth: bool
+    farnsworth_wpm: float | None  # overall speed when Farnsworth-spaced
+    source: str
+
+    @property
+    def wpm(self) -> float | None:
+        return None if self.dot_s is None else 1.2 / self.dot_s
+
+    @property
+    def n_marks(self) -> int:
+        return int(self.start_s.size)
+
+
+def _capped_cost(e: np.ndarray, cap: float) -> np.ndarray:
+    return np.minimum(e * e, cap * cap)
+
+
+def coarse_unit_s(marks_s: np.ndarray, spaces_s: np.ndarray) -> float | None:
+    """Grid-search estimate of the unit from mark and space lengths (module notes), s."""
+    if marks_s.size == 0:
+        return None
+    grid = np.exp(np.linspace(math.log(0.008), math.log(1.5), 400))
+    lg = np.log(grid)[:, None]
+    cap = math.log(1.8)
+    lm = np.log(marks_s)[None, :] - lg
+    cost = _capped_cost(np.minimum(np.abs(lm), np.abs(lm - math.log(3))), cap).sum(axis=1)
+    if spaces_s.size:
+        ls = np.log(spaces_s)[None, :] - lg
+        e = np.minimum(np.abs(ls), np.abs(ls - math.log(3)))
+        # any space of 4.5 units or more may be a (stretched) character or word gap
+        e = np.where(ls > math.log(4.5), 0.5 * cap, e)
+        cost = cost + _capped_cost(e, cap).sum(axis=1)
+    return float(grid[int(np.argmin(cost))])
+
+
+def _two_means(v: np.ndarray, iters: int = 30) -> tuple[float, float, np.ndarray]:
+    """1-D 2-means; returns the centres (low, high) and the labels (True = high)."""
+    lo, hi = float(np.min(v)), float(np.max(v))
+    if hi - lo < 1e-12:
+        return lo, hi, np.zeros(v.size, dtype=bool)
+    c = np.array([lo, hi])
+    for _ in range(iters):
+        lab = np.abs(v - c[1]) < np.abs(v - c[0])
+        new = np.array([v[~lab].mean() if (~lab).any() else c[0],
+                        v[lab].mean() if lab.any() else c[1]])
+        if np.allclose(new, c):
+            break
+        c = new
+    lab = np.abs(v - c[1]) < np.abs(v - c[0])
+    return float(c[0]), float(c[1]), lab
+
+
+def _running_median(v: np.ndarray, k: int) -> np.ndarray:
+    if v.size <= 2:
+        return np.full(v.size, np.median(v)) if v.size else v
+    k = min(k, v.size if v.size % 2 else v.size - 1)
+    half = k // 2
+    pad = np.pad(v, half, mode="reflect" if v.size > half else "edge")
+    return np.median(np.lib.stride_tricks.sliding_window_view(pad, k), axis=1)[: v.size]
+
+
+def _confidence(distance: np.ndarray, spread: float) -> np.ndarray:
+    from math import erf
+
+    z = np.abs(distance) / max(spread, 1e-3)
+    return np.array([0.5 * (1 + erf(float(x) / math.sqrt(2))) for x in np.atleast_1d(z)])
+
+
+def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
+    """Give every mark and space its class and measure the keying speed.
+
+    Parameters
+    ----------
+    marks : Marks
+    wpm : float, optional
+        Speed the user says was sent; the unit search is then skipped and the unit is
+        only refined around ``1.2 / wpm``.
+
+    Returns
+    -------
+    Symbols
+        With ``dot_s`` None when there is no mark at all.
+    """
+    start, end = marks.start_s, marks.end_s
+    n = start.size
+    m = end - start
+    g = start[1:] - end[:-1]
+    if n == 0:
+        e = np.empty(0)
+        return Symbols(start, end, np.zeros(0, bool), np.zeros(0, int), e, e, e, None, None,
+                       False, None, marks.source)
+    u0 = 1.2 / wpm if wpm else coarse_unit_s(m, g)
+    assert u0 is not None
+    # refine: the start-to-start time of a dot and the element gap after it is 2 units
+    r_m, r_g = m / u0, g / u0
+    is_dot0 = r_m < 2.0
+    pair = is_dot0[:-1] & (r_g < 2.0)
+    step = start[1:] - start[:-1]
+    u_samples = np.concatenate([step[pair] / 2.0,
+                                step[(~is_dot0[:-1]) & (r_g < 2.0)] / 4.0])
+    u_times = np.concatenate([start[:-1][pair], start[:-1][(~is_dot0[:-1]) & (r_g < 2.0)]])
+    ok = (u_samples > 0.6 * u0) & (u_samples < 1.6 * u0)
+    u_samples, u_times = u_samples[ok], u_times[ok]
+    if u_samples.size >= 2:
+        order = np.argsort(u_times)
+        u_samples, u_times = u_samples[order], u_times[order]
+        unit = float(np.median(u_samples))
+        track = _running_median(u_samples, 11)
+        local = np.interp(start, u_times, track)
+    else:
+        unit = float(u0)
+        local = np.full(n, unit)
+    if wpm:
+        # the user's speed stands unless the marks clearly disagree
+        local = np.where(np.abs(np.log(local / u0)) < math.log(1.3), local, u0)
+    # marks: dots and dashes
+    lm = np.log(m / local)
+    if n >= 2:
+        c_lo, c_hi, _ = _two_means(lm)
+    else:
+        c_lo = c_hi = float(lm[0])
+    if c_hi - c_lo > math.log(1.8):
+        boundary = 0.5 * (c_lo + c_hi)
+        is_dash = lm > boundary
+        spread = math.sqrt(np.mean(np.concatenate([lm[~is_dash] - c_lo, lm[is_dash] - c_hi])
+                                   ** 2)) if n > 2 else 0.1
+        dash_ratio = float(np.exp(c_hi - c_lo))
+    else:  # one class only: a dot is near 1 unit, a dash near 3
+        boundary = math.log(math.sqrt(3.0))
+        is_dash = lm > boundary
+        spread = float(np.std(lm)) if n > 2 else 0.1
+        dash_ratio = None
+    spread = max(spread, 0.05)
+    mark_conf = _confidence(lm - boundary, spread)
+    # spaces
+    gap_class = np.full(g.size, ELEMENT, dtype=int)
+    gap_conf = np.ones(g.size)
+    farns, f_wpm = False, None
+    if g.size:
+        local_g = 0.5 * (local[:-1] + local[1:])
+        lg = np.log(g / local_g)
+        elem = lg < math.log(2.0)
+        pause = lg > math.log(PAUSE_UNITS)
+        longer = ~elem & ~pause
+        gap_class[~elem] = WORD
+        if longer.sum() >= 2:
+            c1, c2, _ = _two_means(lg[longer])
+            if c2 - c1 > math.log(1.6):
+                split = 0.5 * (c1 + c2)
+                char_centre = c1
+            else:
+                centre = 0.5 * (c1 + c2)
+                split = np.inf if (centre < math.log(5.0) or longer.sum() >= 3) else -np.inf
+                char_centre = centre
+            cls = np.where(lg[longer] > split, WORD, CHARACTER)
+            gap_class[np.flatnonzero(longer)] = cls
+            if math.isfinite(split):
+                gap_conf[longer] = _confidence(lg[longer] - split, max(spread, 0.1))
+            if char_centre > math.log(4.5) and (cls == CHARACTER).any():
+                farns = True
+                char_gap_s = float(np.median(g[longer][cls == CHARACTER]))
+                f_wpm = farnsworth_wpm(1.2 / unit, char_gap_s)
+        elif longer.sum() == 1:
+            gap_class[longer] = CHARACTER if lg[longer][0] < math.log(5.0) else WORD
+        gap_conf[elem | longer] = np.minimum(
+            gap_conf[elem | longer], _confidence(lg[elem | longer] - math.log(2.0), spread))
+    return Symbols(start_s=start, end_s=end, is_dash=is_dash, gap_class=gap_class,
+                   mark_confidence=mark_conf, gap_confidence=gap_conf, local_dot_s=local,
+                   dot_s=unit, dash_dot_ratio=dash_ratio, farnsworth=farns,
+                   farnsworth_wpm=f_wpm, source=marks.source)
