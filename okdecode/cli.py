@@ -94,6 +94,16 @@ def summary(result) -> str:
     return "\n".join(lines)
 
 
+def _per_file(out: str, path: str, n_files: int) -> str:
+    """OUT itself for one file; OUT-<stem>.<ext> for each of several."""
+    if n_files == 1:
+        return out
+    from pathlib import Path
+
+    o = Path(out)
+    return str(o.with_name(f"{o.stem}-{Path(path).stem}{o.suffix}"))
+
+
 def _reader_options(rate, iq_format, center_hz) -> dict:
     out = {}
     if rate is not None:
@@ -121,9 +131,13 @@ def _reader_options(rate, iq_format, center_hz) -> dict:
               help="Raw I/Q sample type by SigMF name: cu8, ci8, ci16_le, cf32_le, ...")
 @click.option("--center-hz", type=float, default=None, metavar="HZ",
               help="I/Q: the frequency of baseband 0 Hz, so reported frequencies are absolute.")
+@click.option("--plot", "plot_path", default=None, type=click.Path(), metavar="OUT",
+              help="Write a figure of the reception (.png, .svg or .pdf); with several files "
+                   "each gets its own, OUT-<name>.png.")
 @click.option("--json", "as_json", is_flag=True,
               help="One JSON object per file (JSON Lines) instead of the summary.")
-def decode(files, carrier, channel, wpm, decoder, rate, iq_format, center_hz, as_json):
+def decode(files, carrier, channel, wpm, decoder, rate, iq_format, center_hz, plot_path,
+           as_json):
     """Decode keyed recordings and report text, strength and timing."""
     from .capture import open_capture
     from .receiver import decode_capture
@@ -136,6 +150,10 @@ def decode(files, carrier, channel, wpm, decoder, rate, iq_format, center_hz, as
             progress.total = capture.n_samples
             result = decode_capture(capture, carrier_hz=carrier, channel=channel, wpm=wpm,
                                     decoder=decoder, progress=progress)
+            if plot_path is not None:
+                from .plot import write_figure
+
+                write_figure(result, _per_file(plot_path, path, len(files)))
         except Exception as err:  # noqa: BLE001 - one line per file, the others go on
             progress.close()
             _echo_err(fail_line(path, err))
