@@ -1,4 +1,15 @@
-"""Audio captures (WAV, FLAC, OGG, and whatever else libsndfile reads) via soundfile."""
+"""Audio captures (WAV, FLAC, OGG, and whatever else libsndfile reads) via soundfile.
+
+libsndfile reads a RIFF WAV whose data chunk claims more bytes than the file holds without
+complaint, as if the missing tail were never there, so the RIFF chunk list is checked here
+first [1]_; and a text file given a ``.wav`` name is told apart from damaged audio.
+
+References
+----------
+.. [1] Microsoft and IBM, "Multimedia Programming Interface and Data Specifications 1.0",
+   1991, chapter 3 (RIFF chunks: a four-byte id, a 32-bit little-endian size, the data, a
+   pad byte after odd sizes; "RIFX" is the big-endian form).
+"""
 
 from __future__ import annotations
 
@@ -9,7 +20,40 @@ import numpy as np
 import soundfile
 
 from ..errors import CaptureError
-from . import Capture, check_finite
+from . import Capture, check_finite, looks_like_text
+
+#: Leading bytes of the containers libsndfile reads, so a text file is not mistaken for one.
+MAGIC = (b"RIFF", b"RIFX", b"RF64", b"BW64", b"fLaC", b"OggS", b"FORM", b".snd", b"caff")
+
+
+def check_riff(path: Path, *, source: str) -> None:
+    """Raise CaptureError if a RIFF WAV file is shorter than its chunks say.
+
+    Files that are not RIFF WAVE (FLAC, OGG, RF64, ...) are left to libsndfile. A data
+    chunk whose size field is 0 or 0xFFFFFFFF (written by a recorder before it knew the
+    length) is accepted: the samples run to the end of the file.
+    """
+    size = path.stat().st_size
+    with open(path, "rb") as f:
+        head = f.read(12)
+        if len(head) < 12 or head[:4] not in (b"RIFF", b"RIFX") or head[8:12] != b"WAVE":
+            return
+        order = "big" if head[:4] == b"RIFX" else "little"
+        pos = 12
+        while pos + 8 <= size:
+            f.seek(pos)
+            chunk = f.read(8)
+            chunk_id, n = chunk[:4], int.from_bytes(chunk[4:], order)
+            if chunk_id == b"data":
+                left = size - pos - 8
+                if n not in (0, 0xFFFFFFFF) and n > left:
+                    raise CaptureError(source, f"truncated: the WAV data chunk declares {n} "
+                                       f"bytes but the file holds {left}",
+                                       expected="a complete WAV file")
+                return
+            pos += 8 + n + (n & 1)
+    raise CaptureError(source, "truncated: the file ends before the WAV data chunk",
+                       expected="a complete WAV file")
 
 
 def read_audio(path: Path, *, source: str) -> Capture:
@@ -32,6 +76,14 @@ def read_audio(path: Path, *, source: str) -> Capture:
     CaptureError
         If libsndfile cannot read it, or it holds no samples.
     """
+    with open(path, "rb") as f:
+        head = f.read(4096)
+    if not head.startswith(MAGIC) and looks_like_text(head):
+        what = path.suffix.lstrip(".").upper() or "an audio file"
+        raise CaptureError(source, f"is a text file, not {what} audio",
+                           expected="a WAV, FLAC or OGG recording (a trace export reads "
+                           "under a .csv or .txt name)")
+    check_riff(path, source=source)
     try:
         with soundfile.SoundFile(str(path)) as f:
             rate_hz, n_frames, n_channels = float(f.samplerate), f.frames, f.channels
