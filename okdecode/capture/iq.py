@@ -84,9 +84,10 @@ class SampleFormat:
         array([-1.        +1.j        , -0.00392157+0.00392157j], dtype=complex64)
         """
         if self.component.kind == "f":
-            x = raw.astype(self.component.newbyteorder("="))  # a copy, in native order
+            # a plain array (not a memmap), copied out of the map, in native byte order
+            x = np.array(raw, dtype=self.component.newbyteorder("="))
         else:
-            x = raw.astype(np.float32)
+            x = np.array(raw, dtype=np.float32)
             if self.offset:
                 x -= np.float32(self.offset)
             x *= np.float32(self.scale)
