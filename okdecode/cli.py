@@ -208,3 +208,53 @@ def synth(out, message, wpm, char_wpm, carrier, rate, cn0, jitter, dash_dot_rati
 # Commands of later stages register below, each in its own block.
 # --- verify ---
 # --- batch ---
+@main.command(context_settings=_CONTEXT)
+@click.argument("source", metavar="INPUT", type=click.Path())
+@click.option("--out", "out_dir", required=True, type=click.Path(), metavar="DIR",
+              help="Output folder: results.sqlite, results.csv, results.json, report.html.")
+@click.option("--workers", type=int, default=None, metavar="N",
+              help="Worker processes. Default: one per CPU; 1 decodes in this process.")
+@click.option("--scheduler", default=None, metavar="ADDRESS",
+              help="Run on a Dask distributed cluster at this scheduler address "
+                   "(pip install 'okdecode[cluster]'); the files must be reachable from its "
+                   "workers at the same paths.")
+@click.option("--max-cer", type=float, default=0.0, show_default=True, metavar="X",
+              help="Largest character error rate still counted as received.")
+@click.option("--json", "as_json", is_flag=True,
+              help="One JSON object per recording as it is stored (JSON Lines), then the "
+                   "campaign summary as a last object.")
+def batch(source, out_dir, workers, scheduler, max_cer, as_json):
+    """Process a range-test campaign: INPUT is a folder (searched recursively) or a manifest
+    CSV with a 'file' column and optional expect, distance_m, rate_hz, iq_format, carrier_hz,
+    channel (other columns are kept as metadata).
+
+    Results go to DIR/results.sqlite one by one; a re-run skips what is stored, so an
+    interrupted run resumes. Exit 0 when every recording was processed, 1 when some
+    failed, 2 when the batch could not start.
+    """
+    from .batch import run
+
+    def shown(row: dict) -> None:
+        if as_json:
+            keep = ("file", "distance_m", "status", "error", "text", "cn0_dbhz", "snr_db",
+                    "wpm", "expected", "received", "cer")
+            click.echo(json.dumps({k: row[k] for k in keep}, ensure_ascii=False))
+        elif row["status"] == "failed":
+            _echo_err(row["error"])
+
+    try:
+        result = run(source, out_dir, workers=workers, scheduler=scheduler, max_cer=max_cer,
+                     on_result=shown)
+    except OkDecodeError as err:
+        _echo_err(str(err))
+        sys.exit(2)
+    if as_json:
+        click.echo(json.dumps(result.to_dict(), ensure_ascii=False))
+    else:
+        got = ("" if result.n_received is None else f", {result.n_received} received")
+        click.echo(f"{result.n_recordings} recordings: {result.n_processed} processed, "
+                   f"{result.n_skipped} already stored, {result.n_failed} failed{got}")
+        click.echo(f"store   {result.store}")
+        if result.report:
+            click.echo(f"report  {result.report}")
+    sys.exit(result.exit_status)
