@@ -416,7 +416,8 @@ class Downconverter:
     def _tables(self, n: int) -> tuple[np.ndarray, np.ndarray]:
         if n > self._table_len:
             arg = self._step_rad * np.arange(n, dtype=np.float64)
-            self._cos, self._sin = np.cos(arg), np.sin(arg)
+            self._cos = np.cos(arg).astype(np.float32)
+            self._sin = np.sin(arg).astype(np.float32)
             self._table_len = n
         return self._cos[:n], self._sin[:n]
 
@@ -428,8 +429,8 @@ class Downconverter:
         cos_t, sin_t = self._tables(n)
         c, s = math.cos(self._phase_rad), math.sin(self._phase_rad)
         # e^{-j(phase + step n)} = cos - j sin, from the tables and the block's phase
-        lo_cos = (c * cos_t - s * sin_t).astype(np.float32)
-        lo_sin = (s * cos_t + c * sin_t).astype(np.float32)
+        lo_cos = np.float32(c) * cos_t - np.float32(s) * sin_t
+        lo_sin = np.float32(s) * cos_t + np.float32(c) * sin_t
         if self.is_complex:
             xr, xi = block.real.astype(np.float32), block.imag.astype(np.float32)
             i_part = xr * lo_cos + xi * lo_sin
@@ -539,8 +540,9 @@ def shift(baseband: Baseband, offset_hz: float) -> Baseband:
     if offset_hz == 0.0:
         return baseband
     n = np.arange(baseband.samples.size)
-    t_s = baseband.start_s + n / baseband.rate_hz
-    lo = np.exp(-2j * np.pi * offset_hz * t_s).astype(np.complex64)
+    phase = np.mod(2 * np.pi * offset_hz * (baseband.start_s + n / baseband.rate_hz), 2 * np.pi)
+    lo = np.empty(n.size, dtype=np.complex64)
+    lo.real, lo.imag = np.cos(phase), -np.sin(phase)
     return Baseband(samples=baseband.samples * lo, rate_hz=baseband.rate_hz,
                     start_s=baseband.start_s, carrier_hz=baseband.carrier_hz + offset_hz,
                     channel=baseband.channel, duration_s=baseband.duration_s,
@@ -572,15 +574,21 @@ class Envelope:
         return self.start_s + np.arange(self.magnitude.size) / self.rate_hz
 
 
-def moving_average(z: np.ndarray, n: int) -> np.ndarray:
-    """Centred moving average of n samples (same length; the ends see fewer)."""
+def moving_average(z: np.ndarray, n: int, *, step: int = 1) -> np.ndarray:
+    """Centred moving average of n samples, every step-th output (the ends see fewer).
+
+    Output k is the mean of ``z[k*step - n//2 : k*step - n//2 + n]`` (clipped to the
+    array), so output k stands at input sample ``k * step``.
+    """
+    dtype = np.complex128 if np.iscomplexobj(z) else np.float64
     if n <= 1:
-        return z.astype(np.complex128)
-    c = np.concatenate([[0], np.cumsum(z.astype(np.complex128))])
-    half = n // 2
-    lo = np.clip(np.arange(z.size) - half, 0, z.size)
-    hi = np.clip(np.arange(z.size) - half + n, 0, z.size)
-    return (c[hi] - c[lo]) / n
+        return z[::step].astype(dtype)
+    c = np.zeros(z.size + 1, dtype=dtype)
+    np.cumsum(z, out=c[1:])
+    # c padded with its end values: c_pad[j] = c[clip(j - n // 2, 0, size)]
+    c = np.pad(c, (n // 2, n - n // 2), mode="edge")
+    m = -(-z.size // step)
+    return (c[n :: step][:m] - c[::step][:m]) / n
 
 
 def noise_bandwidth_hz(n: int, rate_hz: float) -> float:
@@ -593,6 +601,8 @@ def noise_bandwidth_hz(n: int, rate_hz: float) -> float:
     return rate_hz / max(n, 1)
 
 
+#: The envelope keeps at least this many samples per moving-average length.
+ENVELOPE_SAMPLES_PER_FILTER = 8
 #: Offsets from the carrier where noise_density measures the noise, Hz.
 NOISE_BAND_HZ = (100.0, 0.9 * BASEBAND_HALF_BAND_HZ)
 
@@ -603,25 +613,24 @@ def noise_density(baseband: Baseband, *, smooth_s: float = 2.0) -> np.ndarray:
     The band ``100 Hz < |f| < 225 Hz`` around the carrier lies inside the decimation
     chain's flat passband and outside the keying sidebands (those of a 50 WPM dot fall
     by 1/f² past 42 Hz), so its mean power over a moving window of ``smooth_s``,
-    divided by its width, measures the noise density whatever the keying. Strong
-    signals raise it by their sidebands, which only errs on the safe side.
+    divided by its noise bandwidth, measures the noise density whatever the keying.
+    Strong signals raise it by their sidebands, which only errs on the safe side.
     """
+    from scipy import signal
+
     z = baseband.samples
-    n = z.size
-    if n < 16:
-        return np.zeros(n)
-    spec = np.fft.fft(z.astype(np.complex128))
-    f = np.abs(np.fft.fftfreq(n, 1.0 / baseband.rate_hz))
+    rate = baseband.rate_hz
     lo, hi = NOISE_BAND_HZ
-    hi = min(hi, 0.45 * baseband.rate_hz)
-    band = (f > lo) & (f < hi)
-    if not band.any():
-        return np.zeros(n)
-    y = np.fft.ifft(np.where(band, spec, 0.0))
-    power = y.real**2 + y.imag**2
-    width_hz = 2.0 * (hi - lo)
-    k = max(1, int(round(smooth_s * baseband.rate_hz)))
-    return moving_average(power, k).real / width_hz
+    hi = min(hi, 0.45 * rate)
+    if z.size < 16 or hi <= lo:
+        return np.zeros(z.size)
+    # a real band-pass passes both sides of the carrier at once
+    taps = signal.firwin(129, [lo, hi], pass_zero=False, fs=rate)
+    y = signal.oaconvolve(z, taps.astype(np.float32), mode="same")
+    power = (y.real.astype(np.float64) ** 2 + y.imag.astype(np.float64) ** 2)
+    bw_hz = rate * float(np.sum(taps**2))  # two-sided noise bandwidth of the band-pass
+    k = max(1, int(round(smooth_s * rate)))
+    return moving_average(power, k).real / bw_hz
 
 
 def envelope(baseband: Baseband, *, filter_s: float, source: str = "",
@@ -641,15 +650,20 @@ def envelope(baseband: Baseband, *, filter_s: float, source: str = "",
     Returns
     -------
     Envelope
-        At the baseband rate; noise bandwidth ``rate / n`` for n samples.
+        At the baseband rate divided by an integer that leaves at least eight samples
+        per filter length; noise bandwidth ``rate / n`` for n baseband samples.
     """
     n = max(1, int(round(filter_s * baseband.rate_hz)))
-    y = moving_average(baseband.samples, n)
+    # eight samples per filter length are plenty: the moving average passes little
+    # above 1 / filter_s, and its ramps are straight between samples
+    step = max(1, n // ENVELOPE_SAMPLES_PER_FILTER)
+    y = moving_average(baseband.samples, n, step=step)
     bw_hz = noise_bandwidth_hz(n, baseband.rate_hz)
     if density is None:
         density = noise_density(baseband)
     # complex noise of variance N0 * B has a Rayleigh magnitude with sigma² = N0 B / 2
-    sigma = np.sqrt(density * bw_hz / 2.0)
-    return Envelope(magnitude=np.abs(y), rate_hz=baseband.rate_hz, start_s=baseband.start_s,
-                    filter_s=n / baseband.rate_hz, noise_bandwidth_hz=bw_hz,
-                    carrier_hz=baseband.carrier_hz, source=source, noise_sigma=sigma)
+    sigma = np.sqrt(density[::step] * bw_hz / 2.0)
+    return Envelope(magnitude=np.abs(y), rate_hz=baseband.rate_hz / step,
+                    start_s=baseband.start_s, filter_s=n / baseband.rate_hz,
+                    noise_bandwidth_hz=bw_hz, carrier_hz=baseband.carrier_hz, source=source,
+                    noise_sigma=sigma)

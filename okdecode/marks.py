@@ -70,17 +70,22 @@ class Marks:
         return self.end_s - self.start_s, self.start_s[1:] - self.end_s[:-1]
 
 
-def _window_quantiles(x: np.ndarray, win: int, qs: list[float]) -> tuple[np.ndarray, ...]:
+def _windows(x: np.ndarray, win: int, step: int) -> tuple[np.ndarray, np.ndarray]:
+    """Half-overlapping windows of x, thinned to every step-th sample.
+
+    Returns the window start indices and an array (n_windows, m) of their samples.
+    Neighbouring samples of a moving average are nearly equal, so thinning to a few
+    samples per filter length loses nothing and bounds the memory.
+    """
     hop = max(1, win // 2)
-    n_win = max(1, 1 + (x.size - win) // hop) if x.size >= win else 1
-    starts = np.minimum(np.arange(n_win) * hop, max(x.size - win, 0))
     if x.size >= win:
-        frames = np.lib.stride_tricks.sliding_window_view(x, win)[starts]
+        n_win = 1 + (x.size - win) // hop
+        starts = np.minimum(np.arange(n_win) * hop, x.size - win)
+        idx = starts[:, None] + np.arange(0, win, step)[None, :]
     else:
-        frames = x[None, :]
-    q = np.quantile(frames, qs, axis=1)
-    centres = starts + min(win, x.size) / 2.0
-    return centres, starts, q, frames
+        starts = np.zeros(1, dtype=int)
+        idx = np.arange(0, x.size, step)[None, :]
+    return starts, x[idx]
 
 
 def levels(envelope: Envelope, *, window_s: float, p_fa: float = 1e-3,
@@ -102,9 +107,22 @@ def levels(envelope: Envelope, *, window_s: float, p_fa: float = 1e-3,
     x = envelope.magnitude
     rate = envelope.rate_hz
     win = max(8, int(round(window_s * rate)))
-    centres, starts, q, frames = _window_quantiles(x, win, [0.2])
-    q20 = q[0]
+    step = max(1, int(envelope.filter_s * rate) // 4)
+    starts, frames = _windows(x, win, step)
+    frames = np.sort(frames, axis=1)
+    m = frames.shape[1]
+    centres = starts + min(win, x.size) / 2.0
+    q20 = frames[:, int(0.2 * (m - 1))]
+    if noise_mask is not None:
+        _, mask_frames = _windows(noise_mask, win, step)
+        _, raw_frames = _windows(x, win, step)
+        count = mask_frames.sum(axis=1)
+        power = np.where(mask_frames, raw_frames, 0.0) ** 2
+        masked = np.full(starts.size, np.nan)
+        ok = count >= 16
+        masked[ok] = np.sqrt(power[ok].sum(axis=1) / count[ok] / 2.0)
     fraction_noise = np.ones(centres.size)
+    rows = np.arange(starts.size)
     for _ in range(2):
         # the 20 % quantile of a window is the (0.2 / f) quantile of its noise when a
         # fraction f of it is key-up; f comes from the previous threshold
@@ -113,46 +131,31 @@ def levels(envelope: Envelope, *, window_s: float, p_fa: float = 1e-3,
         # a window full of key-down reads its mark as noise: take, around each window,
         # the smallest of the medians of three-window runs, over about seven windows
         sigma = _min_of_medians(sigma_raw)
-        if noise_mask is not None:
-            sigma = _masked_sigma(frames, noise_mask, starts, win, fallback=sigma)
+        if noise_mask is not None and ok.any():
+            sigma = _fill_nearest(masked)
         if envelope.noise_sigma is not None:
             # each estimate errs high in its own way (missed marks in the spaces; strong
             # sidebands in the noise band), so the smaller one is kept
             measured = envelope.noise_sigma[np.minimum(starts + win // 2, x.size - 1)]
             sigma = np.where(measured > 0, np.minimum(sigma, measured), sigma)
-        clear = sigma[:, None] * math.sqrt(2.0 * math.log(1.0 / p_fa))
-        above = frames > clear
-        n_above = above.sum(axis=1)
-        min_count = max(3, int(0.03 * frames.shape[1]))
-        mark = np.full(centres.size, np.nan)
-        for i in np.flatnonzero(n_above >= min_count):
-            # the upper quartile: the plateau of dashes, not the flanks of the filter
-            mark[i] = np.quantile(frames[i][above[i]], 0.75)
+        clear = sigma * math.sqrt(2.0 * math.log(1.0 / p_fa))
+        # frames are sorted: the samples above `clear` are the last n_above of each row
+        n_above = m - np.array([np.searchsorted(frames[i], clear[i], side="right")
+                                for i in rows])
+        min_count = max(3, int(0.03 * m))
+        # the upper quartile of those: the plateau of dashes, not the filter's flanks
+        pick = np.clip(m - n_above + (0.75 * (n_above - 1)).astype(int), 0, m - 1)
+        mark = np.where(n_above >= min_count, frames[rows, pick], np.nan)
         mark_filled = _fill_nearest(mark)
         noise = sigma * math.sqrt(math.pi / 2.0)
-        floor_thr = clear[:, 0]
         if np.isnan(mark_filled).all():
-            threshold = floor_thr * 1.5
+            threshold = clear * 1.5
             break
-        threshold = np.maximum(noise + 0.5 * (mark_filled - noise), floor_thr)
-        fraction_noise = np.maximum((frames < threshold[:, None]).mean(axis=1), 0.2)
+        threshold = np.maximum(noise + 0.5 * (mark_filled - noise), clear)
+        below = np.array([np.searchsorted(frames[i], threshold[i]) for i in rows])
+        fraction_noise = np.maximum(below / m, 0.2)
     t_s = envelope.start_s + centres / rate
     return Levels(time_s=t_s, noise=noise, mark=mark_filled, threshold=threshold, sigma=sigma)
-
-
-def _masked_sigma(frames, mask, starts, win, *, fallback):
-    if mask.size < win:
-        m = mask[None, :]
-    else:
-        m = np.lib.stride_tricks.sliding_window_view(mask, win)[starts]
-    count = m.sum(axis=1)
-    power = np.where(m, frames, 0.0) ** 2
-    sigma = np.full(starts.size, np.nan)
-    ok = count >= 16
-    sigma[ok] = np.sqrt(power[ok].sum(axis=1) / count[ok] / 2.0)
-    if not ok.any():
-        return fallback
-    return _fill_nearest(sigma)
 
 
 def _min_of_medians(v: np.ndarray) -> np.ndarray:
@@ -172,7 +175,7 @@ def _fill_nearest(v: np.ndarray) -> np.ndarray:
     return np.interp(idx, ok, v[ok])
 
 
-def find(envelope: Envelope, *, window_s: float = 2.0, hysteresis_db: float = 1.0,
+def find(envelope: Envelope, *, window_s: float = 2.0, hysteresis_db: float = 0.5,
          min_mark_s: float = 0.0, min_space_s: float = 0.0, p_fa: float = 1e-3,
          levels_: Levels | None = None) -> Marks:
     """Decide key-down and key-up with an adaptive threshold and hysteresis.

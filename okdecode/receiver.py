@@ -25,6 +25,8 @@ from .errors import ParameterError
 DECODERS = ("threshold",)
 #: Filter lengths tried before the speed is known, s (they suit about 8 to 60 WPM).
 FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096)
+#: Length of the stretch of a long recording on which the filter length is chosen, s.
+SELECT_SPAN_S = 120.0
 
 
 @dataclass(frozen=True)
@@ -111,31 +113,39 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
     base = bb.tune(capture, carrier, channel=chan, progress=progress)
     search_bin = spectrum.bin_hz if spectrum is not None else 0.0
     max_off = max(1.0 * search_bin, 25.0) if opts.carrier_hz is None else 40.0
-    base = bb.shift(base, bb.fine_offset_hz(base, max_offset_hz=max_off))
+    part, _ = _busiest(base, base.samples, span_s=SELECT_SPAN_S)
+    base = bb.shift(base, bb.fine_offset_hz(part, max_offset_hz=max_off))
     return _decode_baseband(base, capture, opts, warnings, notes, spectrum)
 
 
 def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warnings, notes,
                      spectrum) -> report.Reception:
     source = capture.source
+    density = bb.noise_density(base)
+    # the filter length is chosen on the busiest stretch of a long recording
+    part, part_density = _busiest(base, density, span_s=SELECT_SPAN_S)
     best = None
     first = (1.2 / opts.wpm,) if opts.wpm else FIRST_FILTERS_S
     for filter_s in first:
-        trial = _run(base, source, filter_s=filter_s, wpm=opts.wpm)
+        trial = _run(part, source, filter_s=filter_s, wpm=opts.wpm, density=part_density)
         if best is None or trial[0] > best[0]:
             best = trial
     assert best is not None
     score, env, found, syms, decoded = best
+    if syms.dot_s is None or part is not base:
+        syms_dot = syms.dot_s
+        score, env, found, syms, decoded = _run(base, source, filter_s=syms_dot or first[0],
+                                                wpm=opts.wpm, density=density)
     if syms.dot_s is not None:
         # re-tune: the moving average matched to the dot, then once more if it moved
         for _ in range(2):
             dot = syms.dot_s
-            trial = _run(base, source, filter_s=dot, wpm=opts.wpm)
+            if abs(env.filter_s / dot - 1) < 0.1:
+                break
+            trial = _run(base, source, filter_s=dot, wpm=opts.wpm, density=density)
             if trial[3].dot_s is None:
                 break
             score, env, found, syms, decoded = trial
-            if abs(syms.dot_s / dot - 1) < 0.1:
-                break
     if not decoded.characters:
         warnings.append("no keyed signal found")
         return report.empty(file=source, duration_s=capture.duration_s,
@@ -161,9 +171,33 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
                            notes=notes, spectrum=spectrum)
 
 
-def _run(base: bb.Baseband, source: str, *, filter_s: float, wpm: float | None):
+def _busiest(base: bb.Baseband, density: np.ndarray, *, span_s: float
+             ) -> tuple[bb.Baseband, np.ndarray]:
+    """The stretch of ``span_s`` whose power varies most (the keying), or all of it."""
+    rate = base.rate_hz
+    n_span = int(span_s * rate)
+    if base.samples.size <= n_span:
+        return base, density
+    chunk = max(1, int(5.0 * rate))
+    n_chunks = base.samples.size // chunk
+    z = base.samples[: n_chunks * chunk]
+    p = (z.real**2 + z.imag**2).reshape(n_chunks, chunk)
+    var = p.var(axis=1)
+    k = max(1, n_span // chunk)
+    run = np.convolve(var, np.ones(k), mode="valid")
+    first = int(np.argmax(run)) * chunk
+    sl = slice(first, first + k * chunk)
+    part = bb.Baseband(samples=base.samples[sl], rate_hz=rate,
+                       start_s=base.start_s + first / rate, carrier_hz=base.carrier_hz,
+                       channel=base.channel, duration_s=base.duration_s,
+                       half_band_hz=base.half_band_hz)
+    return part, density[sl]
+
+
+def _run(base: bb.Baseband, source: str, *, filter_s: float, wpm: float | None,
+         density: np.ndarray | None = None):
     """One envelope, marks, symbols and text at a filter length, with a fit score."""
-    env = bb.envelope(base, filter_s=filter_s, source=source)
+    env = bb.envelope(base, filter_s=filter_s, source=source, density=density)
     unit = filter_s if wpm is None else 1.2 / wpm
     found = mk.find(env, window_s=max(1.0, 25 * unit), min_mark_s=0.4 * unit,
                     min_space_s=0.4 * unit)

@@ -132,6 +132,9 @@ def coarse_unit_s(marks_s: np.ndarray, spaces_s: np.ndarray) -> float | None:
     """Grid-search estimate of the unit from mark and space lengths (module notes), s."""
     if marks_s.size == 0:
         return None
+    # a few thousand durations fix the unit; evenly spaced ones keep a long file's
+    # search as cheap as a short one's
+    marks_s, spaces_s = marks_s[:: 1 + marks_s.size // 2000], spaces_s[:: 1 + spaces_s.size // 2000]
     grid = np.exp(np.linspace(math.log(0.008), math.log(1.5), 400))
     lg = np.log(grid)[:, None]
     cap = math.log(1.8)
@@ -209,9 +212,12 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
     is_dot0 = r_m < 2.0
     pair = is_dot0[:-1] & (r_g < 2.0)
     step = start[1:] - start[:-1]
-    u_samples = np.concatenate([step[pair] / 2.0,
-                                step[(~is_dot0[:-1]) & (r_g < 2.0)] / 4.0])
-    u_times = np.concatenate([start[:-1][pair], start[:-1][(~is_dot0[:-1]) & (r_g < 2.0)]])
+    u_samples, u_times = step[pair] / 2.0, start[:-1][pair]
+    if u_samples.size < 5:
+        # few dots: a dash and its gap span 4 units, for a fist with a 1:3 dash
+        dash_pair = (~is_dot0[:-1]) & (r_g < 2.0)
+        u_samples = np.concatenate([u_samples, step[dash_pair] / 4.0])
+        u_times = np.concatenate([u_times, start[:-1][dash_pair]])
     ok = (u_samples > 0.6 * u0) & (u_samples < 1.6 * u0)
     u_samples, u_times = u_samples[ok], u_times[ok]
     if u_samples.size >= 2:
