@@ -429,10 +429,13 @@ def _verify(reception, expect: str, max_cer: float) -> dict:
 # --- the work of one recording --------------------------------------------------------------
 
 
-def _error_line(source: str, err: BaseException) -> str:
-    if isinstance(err, OkDecodeError):
-        return str(err)
-    return f"{source}: unexpected {type(err).__name__} ({err}); please report this"
+def _error_line(job: Job, err: BaseException) -> str:
+    """One line that starts with the recording's name as the campaign knows it."""
+    if not isinstance(err, OkDecodeError):
+        return f"{job.file}: unexpected {type(err).__name__} ({err}); please report this"
+    line = str(err)
+    # the readers name the absolute path they were given; the campaign's name is shorter
+    return job.file + line[len(job.path):] if line.startswith(job.path + ":") else line
 
 
 def _jsonable(value):
@@ -469,7 +472,7 @@ def process(job: Job, content_hash: str, figure_path: str | None = None,
         verification = (_verify(reception, job.expect, job.max_cer)
                         if job.expect is not None else None)
     except Exception as err:  # noqa: BLE001 - the campaign goes on; the error is stored
-        return Outcome(*key, status="failed", error=_error_line(job.file, err), decode=None,
+        return Outcome(*key, status="failed", error=_error_line(job, err), decode=None,
                        verification=None, capture_metadata={}, figure=None, warnings=(),
                        elapsed_s=time.perf_counter() - t0)
     warnings = list(reception.warnings)
@@ -483,7 +486,7 @@ def process(job: Job, content_hash: str, figure_path: str | None = None,
             write_figure(reception, str(target))
             figure = figure_path
         except Exception as err:  # noqa: BLE001 - a figure is a nicety; the decode stands
-            warnings.append(f"figure not written: {_error_line(job.file, err)}")
+            warnings.append(f"figure not written: {_error_line(job, err)}")
     return Outcome(*key, status="ok", error=None, decode=_jsonable(decoded),
                    verification=None if verification is None else _jsonable(verification),
                    capture_metadata=_jsonable(dict(capture.metadata)), figure=figure,
@@ -772,38 +775,42 @@ def _lost(job: Job, key: tuple[str, str], why: str) -> Outcome:
                    elapsed_s=0.0)
 
 
-def _dask(todo: list, scheduler: str) -> Iterator:
-    """Run jobs on a Dask distributed cluster; yield (job, key, outcome) as they finish."""
+def _dask(todo: list, scheduler: str, timeout_s: float) -> Iterator:
+    """Connect to a Dask distributed scheduler now; the iterator yields (job, key, outcome)."""
     if importlib.util.find_spec("distributed") is None:
         raise ParameterError(scheduler, "--scheduler needs Dask distributed, which is not "
                              "installed", expected="pip install 'okdecode[cluster]'")
     from distributed import Client, as_completed
 
     try:
-        client = Client(scheduler, timeout="10s", set_as_default=False)
+        client = Client(scheduler, timeout=f"{timeout_s}s", set_as_default=False)
     except (OSError, TimeoutError, ValueError) as err:
         raise ParameterError(scheduler, f"cannot reach the Dask scheduler ({err})",
                              expected="an address such as tcp://host:8786") from err
-    try:
-        futures = {}
-        for job, key, args in todo:
-            fut = client.submit(process, job, *args, pure=False)
-            futures[fut] = (job, key)
-        for fut in as_completed(list(futures)):
-            job, key = futures.pop(fut)
-            try:
-                outcome = fut.result()
-            except Exception as err:  # noqa: BLE001 - a lost worker fails only its jobs
-                outcome = _lost(job, key, f"Dask task failed ({type(err).__name__}: {err})")
-            yield job, key, outcome
-    finally:
-        client.close()
+
+    def results() -> Iterator:
+        try:
+            futures = {}
+            for job, key, args in todo:
+                futures[client.submit(process, job, *args, pure=False)] = (job, key)
+            for fut in as_completed(list(futures), loop=client.loop):
+                job, key = futures.pop(fut)
+                try:
+                    outcome = fut.result()
+                except Exception as err:  # noqa: BLE001 - a lost worker fails only its jobs
+                    outcome = _lost(job, key, f"Dask task failed ({type(err).__name__}: {err})")
+                yield job, key, outcome
+        finally:
+            client.close()
+
+    return results()
 
 
 def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | None = None,
         scheduler: str | None = None, max_cer: float = 0.0, report: bool = True,
         figures: bool | None = None, progress: bool | None = None,
-        on_result: Callable[[dict], None] | None = None) -> Summary:
+        on_result: Callable[[dict], None] | None = None,
+        connect_timeout_s: float = 10.0) -> Summary:
     """Process a campaign into ``out``: store, exports and report.
 
     Parameters
@@ -830,6 +837,8 @@ def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | Non
         Show a progress bar on stderr; default: when stderr is a terminal.
     on_result : callable, optional
         Called in this process with each stored row (a dict) as it is stored.
+    connect_timeout_s : float
+        How long to try to reach the scheduler, s.
 
     Returns
     -------
@@ -890,7 +899,8 @@ def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | Non
             fig = _figure_name(job, chash, shash) if figures else None
             todo.append((job, key, (chash, fig, out_abs)))
         bar = _Bar(len(todo) + len(early), enabled=progress)
-        results = _dask(todo, scheduler) if scheduler else _local(todo, workers)
+        results = (_dask(todo, scheduler, connect_timeout_s) if scheduler
+                   else _local(todo, workers))
 
         def stream():
             yield from early

@@ -220,10 +220,12 @@ def synth(out, message, wpm, char_wpm, carrier, rate, cn0, jitter, dash_dot_rati
                    "workers at the same paths.")
 @click.option("--max-cer", type=float, default=0.0, show_default=True, metavar="X",
               help="Largest character error rate still counted as received.")
+@click.option("--figures/--no-figures", default=True, show_default=True,
+              help="A figure per recording in DIR/figures, linked from the report.")
 @click.option("--json", "as_json", is_flag=True,
               help="One JSON object per recording as it is stored (JSON Lines), then the "
                    "campaign summary as a last object.")
-def batch(source, out_dir, workers, scheduler, max_cer, as_json):
+def batch(source, out_dir, workers, scheduler, max_cer, figures, as_json):
     """Process a range-test campaign: INPUT is a folder (searched recursively) or a manifest
     CSV with a 'file' column and optional expect, distance_m, rate_hz, iq_format, carrier_hz,
     channel (other columns are kept as metadata).
@@ -244,7 +246,7 @@ def batch(source, out_dir, workers, scheduler, max_cer, as_json):
 
     try:
         result = run(source, out_dir, workers=workers, scheduler=scheduler, max_cer=max_cer,
-                     on_result=shown)
+                     figures=None if figures else False, on_result=shown)
     except OkDecodeError as err:
         _echo_err(str(err))
         sys.exit(2)
