@@ -207,6 +207,117 @@ def synth(out, message, wpm, char_wpm, carrier, rate, cn0, jitter, dash_dot_rati
 
 # Commands of later stages register below, each in its own block.
 # --- verify ---
+def _verify_summary(v) -> str:
+    """The human report of one Verification: a summary line, then the details."""
+    d = v.to_dict()
+    n_diff = len(d["differences"])
+    copies = f"{d['copies']} intact cop{'y' if d['copies'] == 1 else 'ies'}"
+    verdict = "received" if d["received"] else "NOT received"
+    lines = [f"{d['file']}: {verdict} (CER {d['cer']:.3f}, {n_diff} difference"
+             f"{'' if n_diff == 1 else 's'}, {copies})"]
+    lines.append(f"  expected  {d['expected']}")
+    lines.append(f"  text      {d['text'] or '(nothing decoded)'}")
+    if d["best_copy"]["text"] and d["best_copy"]["text"] != d["text"]:
+        lines.append(f"  best copy {d['best_copy']['text']}")
+    for diff in d["differences"][:40]:
+        at = "   n/a  " if diff["time_s"] is None else f"{diff['time_s']:8.2f}"
+        e = "" if diff["expected"] is None else repr(diff["expected"])
+        r = "" if diff["received"] is None else repr(diff["received"])
+        what = {"substitution": f"expected {e}, got {r}", "missing": f"missing {e}",
+                "extra": f"extra {r}"}[diff["kind"]]
+        lines.append(f"  at {at} s  {what}")
+    if n_diff > 40:
+        lines.append(f"  ... and {n_diff - 40} more differences")
+    det = d["detection"]
+    if det is not None:
+        if det["statistic"] is None:
+            lines.append("  keying    the message does not fit in the recording")
+        else:
+            found = "found" if det["detected"] else "not found"
+            speed = f"{det['wpm']:.1f} WPM"
+            if det["farnsworth_wpm"] is not None:
+                speed += f" (Farnsworth {det['farnsworth_wpm']:.1f} WPM overall)"
+            cn0 = "n/a" if det["cn0_dbhz"] is None else f"{det['cn0_dbhz']:.1f} dB-Hz"
+            lines.append(f"  keying    {found}: statistic {det['statistic']:.3f}, false-alarm "
+                         f"probability {det['false_alarm_probability']:.2g}, {speed} from "
+                         f"{det['start_s']:.2f} s, C/N0 {cn0}")
+    for w in d.get("warnings", []):
+        lines.append(f"  warning   {w}")
+    return "\n".join(lines)
+
+
+@main.command(context_settings=_CONTEXT)
+@click.argument("files", nargs=-1, required=True, type=click.Path())
+@click.option("--expect", "expect_text", default=None, metavar="TEXT",
+              help="The message that was sent (prosigns as <AR>, <SK>, ...).")
+@click.option("--expect-file", default=None, type=click.Path(), metavar="F",
+              help="Expected messages, one per line. By default the recording holds them "
+                   "in order, one after another (compared as one text); with "
+                   "--alternatives it holds any one of them (the best match counts).")
+@click.option("--alternatives", is_flag=True,
+              help="The lines of --expect-file are alternatives, not messages in order.")
+@click.option("--max-cer", type=float, default=0.0, show_default=True, metavar="X",
+              help="Largest character error rate that still counts as received.")
+@click.option("--no-detect", is_flag=True,
+              help="Skip the search for the expected keying below the decoding threshold.")
+@click.option("--carrier", type=float, default=None, metavar="HZ",
+              help="Carrier frequency (absolute). Default: found from the spectrum.")
+@click.option("--channel", type=int, default=None, metavar="N",
+              help="Channel index. Default: the channel with the strongest keyed signal.")
+@click.option("--wpm", type=float, default=None, metavar="N",
+              help="Sending speed, if known. Default: measured.")
+@click.option("--rate", type=float, default=None, metavar="HZ",
+              help="Sample rate, for raw I/Q, NumPy arrays and traces without a time column.")
+@click.option("--iq-format", default=None, metavar="TYPE",
+              help="Raw I/Q sample type by SigMF name: cu8, ci8, ci16_le, cf32_le, ...")
+@click.option("--center-hz", type=float, default=None, metavar="HZ",
+              help="I/Q: the frequency of baseband 0 Hz, so reported frequencies are absolute.")
+@click.option("--json", "as_json", is_flag=True,
+              help="One JSON object per file (JSON Lines) instead of the report.")
+def verify(files, expect_text, expect_file, alternatives, max_cer, no_detect, carrier, channel,
+           wpm, rate, iq_format, center_hz, as_json):
+    """Check that recordings received the expected message, and how surely.
+
+    Exit status 0 when every file received the message within --max-cer, 1 when any
+    did not, 2 when any input was bad (the other files are still checked).
+    """
+    from .verify import verify_file
+
+    if (expect_text is None) == (expect_file is None):
+        _echo_err("verify: give the message with --expect TEXT or --expect-file F (one)")
+        sys.exit(2)
+    if expect_file is not None:
+        try:
+            with open(expect_file, encoding="utf-8") as fh:
+                expected = [line.strip() for line in fh if line.strip()]
+        except (OSError, UnicodeDecodeError) as err:
+            _echo_err(f"{expect_file}: cannot be read ({type(err).__name__}); expected a "
+                      "text file, one message per line")
+            sys.exit(2)
+        if not expected:
+            _echo_err(f"{expect_file}: holds no message; expected one message per line")
+            sys.exit(2)
+    else:
+        expected = expect_text
+    status = 0
+    options = _reader_options(rate, iq_format, center_hz)
+    for path in files:
+        try:
+            result = verify_file(path, expected, max_cer=max_cer,
+                                 expect_alternatives=alternatives, detect=not no_detect,
+                                 carrier_hz=carrier, channel=channel, wpm=wpm, **options)
+        except Exception as err:  # noqa: BLE001 - one line per file, the others go on
+            _echo_err(fail_line(path, err))
+            status = 2
+            continue
+        if as_json:
+            click.echo(json.dumps(result.to_dict(), ensure_ascii=False))
+        else:
+            click.echo(_verify_summary(result))
+        if not result.received and status == 0:
+            status = 1
+    sys.exit(status)
+
 # --- batch ---
 @main.command(context_settings=_CONTEXT)
 @click.argument("source", metavar="INPUT", type=click.Path())
