@@ -39,9 +39,15 @@ from .errors import ParameterError
 BASEBAND_HALF_BAND_HZ = 250.0
 #: The stored baseband runs at a rate in [BASEBAND_MIN_HZ, 2 * BASEBAND_MIN_HZ).
 BASEBAND_MIN_HZ = 750.0
-#: Length of one analysis frame of the carrier search, s (about 60 Hz resolution; a
-#: frame shorter than a dot at 50 WPM).
-SEARCH_FRAME_S = 0.016
+#: Length of one analysis frame of the carrier search, s: about 77 Hz resolution, a
+#: frame shorter than a dot at 50 WPM, and a frame rate (76.9 Hz) at which the 50 and
+#: 60 Hz beats of mains hum harmonics (with each other and with their images) alias to
+#: 0.65 and 0.78 of the frame rate, far from 0 Hz, so a steady hum does not swing
+#: slowly from frame to frame the way keying does (the frame's length is rounded to a
+#: fast FFT length, which moves these by a few per cent at most).
+SEARCH_FRAME_S = 0.013
+#: A keyed bin spends at least this fraction of frames near the noise floor.
+MIN_KEY_UP_FRACTION = 0.1
 #: Lags, in frames, over which the search sums the power autocorrelation.
 SEARCH_LAGS = 4
 #: The carrier search judges keying over segments of this length, s, so that a short
@@ -99,11 +105,13 @@ class KeyingSearch:
         self.n_bins = n if is_complex else n // 2 + 1
         shape = (n_channels, self.n_bins)
         self._sum = np.zeros(shape)
-        # S1, S2 and the lagged products S(l) for l = 1..SEARCH_LAGS
-        self._seg = [np.zeros(shape) for _ in range(2 + SEARCH_LAGS)]
+        # S1, S2, the lagged products S(l) for l = 1..SEARCH_LAGS, and the count of
+        # frames near the noise floor (key-up evidence)
+        self._seg = [np.zeros(shape) for _ in range(3 + SEARCH_LAGS)]
         self._seg_n = 0
         self._best_z = np.full(shape, -np.inf)
         self._best_cov = np.zeros(shape)
+        self._best_low = np.zeros(shape)  # fraction of frames near the floor, best segment
         self._last = np.empty((n_channels, 0, self.n_bins))  # the frames before this block
         self._pending = np.empty((0, n_channels), dtype=np.complex64 if is_complex
                                  else np.float32)
@@ -135,9 +143,14 @@ class KeyingSearch:
 
     def _accumulate(self, p: np.ndarray) -> None:
         self._sum += p.sum(axis=1)
-        s1, s2, *lagged = self._seg
+        s1, s2, low, *lagged = self._seg
         s1 += p.sum(axis=1)
         s2 += np.einsum("cfb,cfb->cb", p, p)
+        # a frame is near the floor when its power is under three times the frame's
+        # median over all bins (most bins hold noise alone, whose median power is ln 2
+        # of its mean: noise alone stays under that 87 % of the time)
+        floor = np.median(p, axis=2, keepdims=True)
+        low += (p < 3.0 * floor).sum(axis=1)
         both = np.concatenate([self._last, p], axis=1)
         k = self._last.shape[1]
         for lag, acc in enumerate(lagged, start=1):
@@ -152,7 +165,7 @@ class KeyingSearch:
     def _close_segment(self) -> None:
         n = self._seg_n
         if n >= 8:
-            s1, s2, *lagged = self._seg
+            s1, s2, low, *lagged = self._seg
             mean = s1 / n
             var = np.maximum(s2 / n - mean**2, 1e-300)
             cov = np.zeros_like(mean)
@@ -166,6 +179,7 @@ class KeyingSearch:
             better = z > self._best_z
             self._best_z = np.where(better, z, self._best_z)
             self._best_cov = np.where(better, cov, self._best_cov)
+            self._best_low = np.where(better, low / n, self._best_low)
             self.n_segments += 1
         self._seg = [np.zeros_like(a) for a in self._seg]
         self._seg_n = 0
@@ -206,6 +220,10 @@ class KeyingSearch:
         for flat in order:
             ch, b = np.unravel_index(flat, z.shape)
             if not valid[b] or z[ch, b] < threshold or keyed_power[ch, b] <= 0:
+                continue
+            if self._best_low[ch, b] < MIN_KEY_UP_FRACTION:
+                # never down at the floor: a steady carrier that beats with a neighbour
+                # or with its own image swings slowly, but it is not keyed
                 continue
             if taken[:, b].any():
                 continue

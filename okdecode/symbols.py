@@ -17,7 +17,8 @@ in force.
 *Classes.* Marks split into dots and dashes at the geometric mean of the two clusters
 found on log duration (2-means); spaces under 2 local units are element gaps, and the
 rest split into character and word gaps by 2-means on log duration, or, where only one
-cluster exists, by its length. Spaces longer than 20 units are pauses (word breaks).
+cluster exists, by its length. Spaces longer than 20 units, and four times the median
+of the longer spaces, are pauses (word breaks).
 Character gaps longer than 4.5 units mean Farnsworth spacing; the overall speed then
 follows from J. Bloom's relation (QEX, 1990): a PARIS word at character speed ``c`` and
 overall speed ``s`` stretches its 19 units of character and word spacing to
@@ -259,7 +260,12 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
         local_g = 0.5 * (local[:-1] + local[1:])
         lg = np.log(g / local_g)
         elem = lg < math.log(2.0)
-        pause = lg > math.log(PAUSE_UNITS)
+        # a pause is far longer than the usual gap between characters, which Farnsworth
+        # spacing may stretch past 20 units
+        pause_lg = math.log(PAUSE_UNITS)
+        if (~elem).any():
+            pause_lg = max(pause_lg, float(np.median(lg[~elem])) + math.log(4.0))
+        pause = lg > pause_lg
         longer = ~elem & ~pause
         gap_class[~elem] = WORD
         if longer.sum() >= 2:
