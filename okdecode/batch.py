@@ -417,13 +417,17 @@ def _fallback_verification(reception, expect: str, max_cer: float) -> dict:
             "differences": [], "detection": None}
 
 
-def _verify(reception, expect: str, max_cer: float) -> dict:
+def _verify(reception, job: Job, capture) -> dict:
+    """okdecode.verify's comparison and known-message detection, or the minimal fallback."""
     if importlib.util.find_spec("okdecode.verify") is not None:
         from . import verify
 
         if hasattr(verify, "verify_reception"):
-            return verify.verify_reception(reception, expect, max_cer=max_cer).to_dict()
-    return _fallback_verification(reception, expect, max_cer)
+            return verify.verify_reception(
+                reception, job.expect, max_cer=job.max_cer, capture=capture,
+                carrier_hz=job.decode_options.get("carrier_hz"),
+                channel=job.decode_options.get("channel")).to_dict()
+    return _fallback_verification(reception, job.expect, job.max_cer)
 
 
 # --- the work of one recording --------------------------------------------------------------
@@ -469,7 +473,7 @@ def process(job: Job, content_hash: str, figure_path: str | None = None,
         capture = open_capture(job.path, **job.reader_options)
         reception = decode_capture(capture, **job.decode_options)
         decoded = reception.to_dict()
-        verification = (_verify(reception, job.expect, job.max_cer)
+        verification = (_verify(reception, job, capture)
                         if job.expect is not None else None)
     except Exception as err:  # noqa: BLE001 - the campaign goes on; the error is stored
         return Outcome(*key, status="failed", error=_error_line(job, err), decode=None,
