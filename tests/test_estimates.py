@@ -100,3 +100,51 @@ def test_snr_is_cn0_less_the_bandwidth(wpm, cn0_dbhz):
         level.cn0_dbhz - 10 * np.log10(level.snr_bandwidth_hz), abs=1e-9)
     # the detection bandwidth is matched to the speed: about 1 / dot (issue 2)
     assert 0.5 * wpm / 1.2 <= level.snr_bandwidth_hz <= 2.0 * wpm / 1.2
+
+
+@pytest.mark.parametrize(("char_wpm", "wpm"), [(20.0, 10.0), (25.0, 15.0), (18.0, 8.0),
+                                               (18.0, 5.0)])
+def test_farnsworth_speeds_within_1_percent(char_wpm, wpm):
+    rec = synth("XQ7ZB DE XQ3AB TEST 73", wpm=wpm, char_wpm=char_wpm, carrier_hz=700.0,
+                cn0_dbhz=40.0, seed=3)
+    got = decode_array(rec.samples, rec.rate_hz)
+    assert got.text == rec.truth.text
+    # characters at char_wpm (dot 1.2 / char_wpm, PARIS, common practice), and the overall
+    # speed of the stretched gaps by J. Bloom's relation (QEX, 1990)
+    assert got.wpm == pytest.approx(char_wpm, rel=0.01)
+    assert got.farnsworth_wpm == pytest.approx(wpm, rel=0.01)
+    assert any("Farnsworth" in note for note in got.notes)
+
+
+def length_tolerance_s(dot_s: float, cn0_dbhz: float) -> float:
+    """Allowed error of a mean mark or gap length, s (see test_marks.edge_tolerance_s).
+
+    A matched filter of one dot places each edge with sigma_t = T / sqrt(2 E / N0), and the
+    noise mean (Rayleigh, sqrt(pi / 2) sigma; Proakis, Digital Communications) raises the
+    threshold, moving each edge by at most T sqrt(pi / 2) / (2 sqrt(2 E / N0)). A length has
+    two edges: allow twice that bias and 3 standard deviations of one length.
+    """
+    root = np.sqrt(2 * 10 ** (cn0_dbhz / 10) * dot_s)
+    return 2 * dot_s * np.sqrt(np.pi / 2) / (2 * root) + 3 * np.sqrt(2) * dot_s / root
+
+
+@pytest.mark.parametrize("seed", (11, 12))
+@pytest.mark.parametrize("cn0_dbhz", (35.0, 50.0))
+def test_timing_and_dash_dot_ratio(cn0_dbhz, seed):
+    wpm, ratio = 20.0, 3.5
+    rec = synth("XQ7ZB DE XQ3AB TEST 73", wpm=wpm, dash_dot_ratio=ratio, carrier_hz=700.0,
+                cn0_dbhz=cn0_dbhz, seed=seed)
+    got = decode_array(rec.samples, rec.rate_hz)
+    assert got.text == rec.truth.text
+    t = got.timing
+    dot_ms = 1200.0 / wpm  # PARIS (common practice)
+    tol_ms = 1e3 * length_tolerance_s(dot_ms / 1e3, cn0_dbhz)
+    assert t.dot_ms == pytest.approx(dot_ms, abs=tol_ms)
+    assert t.dash_ms == pytest.approx(ratio * dot_ms, abs=tol_ms)
+    # ITU-R M.1677-1 (2009): gaps of 1, 3 and 7 units
+    assert t.element_gap_ms == pytest.approx(dot_ms, abs=tol_ms)
+    assert t.char_gap_ms == pytest.approx(3 * dot_ms, abs=tol_ms)
+    assert t.word_gap_ms == pytest.approx(7 * dot_ms, abs=tol_ms)
+    # the ratio of two means, each off by at most tol: (r T + tol) / (T - tol) at worst
+    worst = (ratio * dot_ms + tol_ms) / (dot_ms - tol_ms) - ratio
+    assert t.dash_dot_ratio == pytest.approx(ratio, abs=worst)
