@@ -6,15 +6,15 @@ amplitude A in white noise of variance s**2 over 0..fs/2 (okdecode.synth, issue 
 Why the tolerances are fair. The receiver measures the power inside the marks (S + N) and
 inside the spaces (N) after a filter of noise bandwidth B. With M_on and M_off independent
 samples the relative error of S is about sqrt((S + N)**2 / M_on + N**2 / M_off) / S. The
-weakest case here, 20 dB-Hz at 5 WPM, with B of about 100 Hz and about 14 s of marks and
-19 s of spaces, gives S / N = 0 dB, M_on = 1400, M_off = 1900 and an error of 6 %, i.e.
-0.25 dB: +-1 dB for every case is 4 standard deviations and +-0.5 dB for the median of five
-seeds 3.6 (the median's spread is about 1.25 / sqrt(5) of one case's; common statistics).
+weakest case here, 20 dB-Hz at 5 WPM, with B of about 95 Hz, about 14 s of mark interiors
+and 15 s of spaces, gives S / N = 0 dB, M_on = 1300, M_off = 1400 and an error of 6 %, i.e.
+0.26 dB: +-1 dB for every case is nearly 4 standard deviations and +-0.5 dB for the median
+of five seeds 3.4 (the median's spread is about 1.25 / sqrt(5) of one case's; common statistics).
 
-Speed: the message spans N = 130 units between its first and last edge, each edge placed
+Speed: the message spans N = 133 units between its first and last edge, each edge placed
 with an error of sigma_t = T / sqrt(2 E / N0) by a matched filter of length T (E/N0 of a
 dot). An estimate from the whole span errs by sqrt(2) sigma_t / (N T): at 20 dB-Hz and
-5 WPM (E/N0 = 13.8 dB) that is 0.16 %, and at 35 dB-Hz and 50 WPM (18.8 dB) 0.09 %, so
+5 WPM (E/N0 = 13.8 dB) that is 0.15 %, and at 35 dB-Hz and 50 WPM (18.8 dB) 0.09 %, so
 +-1 % leaves a wide margin at every point tested.
 """
 
