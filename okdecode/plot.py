@@ -70,7 +70,7 @@ MAX_TITLE_CHARS = 110
 #: Figure formats, by file suffix.
 FORMATS = (".png", ".svg", ".pdf")
 #: Frames per batch times frame length: bounds the temporaries of the spectra.
-_BATCH_SAMPLES = 1 << 19
+_BATCH_SAMPLES = 1 << 17
 
 
 # ---------------------------------------------------------------------------------------
@@ -121,13 +121,15 @@ def plot_reception(result: Reception) -> Figure:
     ax_wf.set_xlim(t0, t1)
     _draw_envelope(ax_env, result, t0, t1, characters=on_overview, legend=True)
     ax_env.set_xlim(t0, t1)
-    ax_env.set_title("envelope, whole recording" if chunks or not result.characters
-                     else "envelope and decoded characters", loc="left", fontsize=10)
     if chunks:
         _mark_chunks(ax_env, result, chunks)
-        if n_chunks > n_zoom:
-            ax_env.set_title(f"zooms below show {n_zoom} of {n_chunks} stretches of up to "
-                             f"{MAX_ZOOM_CHARS} characters", loc="right", fontsize=9)
+        ax_env.set_title(f"envelope, whole recording; zooms 1 to {n_zoom} below"
+                         + (f" ({n_zoom} of {n_chunks} stretches of up to {MAX_ZOOM_CHARS} "
+                            "characters)" if n_chunks > n_zoom else ""),
+                         loc="left", fontsize=10)
+    else:
+        ax_env.set_title("envelope and decoded characters" if result.characters
+                         else "envelope, whole recording", loc="left", fontsize=10)
     for k, (i, j) in enumerate(chunks):
         ax = fig.add_subplot(grid[3 + k, :])
         chars = result.characters
@@ -231,8 +233,10 @@ def _zoom_chunks(result: Reception, dot_s: float) -> tuple[list[tuple[int, int]]
         size = -(-(j - i) // n_parts)
         per_tx.append([(a, min(a + size, j)) for a in range(i, j, size)])
     n_chunks = sum(len(p) for p in per_tx)
-    # the start of every transmission first, then the rest in order
-    order = [p[0] for p in per_tx] + [c for p in per_tx for c in p[1:]]
+    # the start of every transmission first, the longest transmissions before stray
+    # characters in the pauses, then the rest in order
+    firsts = sorted((p[0] for p in per_tx), key=lambda c: (-(c[1] - c[0]), c[0]))
+    order = firsts + [c for p in per_tx for c in p[1:]]
     return sorted(order[:MAX_ZOOMS]), n_chunks
 
 
@@ -241,10 +245,12 @@ def _mark_chunks(ax: Axes, result: Reception, chunks: list[tuple[int, int]]) -> 
     tx = ax.get_xaxis_transform()
     for k, (i, j) in enumerate(chunks):
         a, b = chars[i].start_s, chars[j - 1].end_s
-        ax.plot([a, b], [1.0, 1.0], transform=tx, color=COLOURS["vermillion"], lw=3,
-                solid_capstyle="butt", clip_on=False)
-        ax.text(0.5 * (a + b), 1.02, f"zoom {k + 1}", transform=tx, ha="center",
-                va="bottom", fontsize=8, color=COLOURS["vermillion"], gid="zoom-label")
+        ax.plot([a, b], [0.99, 0.99], transform=tx, color=COLOURS["vermillion"], lw=3,
+                solid_capstyle="butt")
+        ax.text(0.5 * (a + b), 0.96, str(k + 1), transform=tx, ha="center", va="top",
+                fontsize=8, color=COLOURS["vermillion"], gid="zoom-label",
+                bbox={"boxstyle": "round,pad=0.15", "facecolor": "white",
+                      "edgecolor": COLOURS["vermillion"], "lw": 0.8})
 
 
 # ---------------------------------------------------------------------------------------
@@ -267,7 +273,7 @@ def _draw_search_spectrum(ax: Axes, result: Reception) -> None:
     ax.set_xlabel(_frequency_label(ref_hz, unit))
     ax.set_ylabel("power, dBFS per bin")
     twin = ax.twinx()
-    twin.plot(f, spec.score[ch], color=COLOURS["purple"], lw=0.8, ls="--",
+    twin.plot(f, spec.score[ch], color=COLOURS["purple"], lw=0.7, ls="--", alpha=0.8,
               label="keying score")
     twin.axhline(spec.threshold, color=COLOURS["purple"], lw=0.8, ls=":",
                  label=f"threshold z = {spec.threshold:.1f}")
@@ -287,20 +293,24 @@ def _draw_search_spectrum(ax: Axes, result: Reception) -> None:
     if others:
         fo = np.array([(c.frequency_hz - ref_hz) / scale for c in others])
         lvl = np.interp(fo, f, spec.power_dbfs[ch])
-        ax.plot(fo, lvl + 3.0, ls="none", marker="v", ms=7, color=COLOURS["orange"],
+        ax.plot(fo, lvl, ls="none", marker="v", ms=7, color=COLOURS["orange"],
                 markeredgecolor=COLOURS["black"], label="keyed, not decoded")
         for c, x, y in zip(others, fo, lvl, strict=True):
-            ax.annotate(f"{c.frequency_hz:,.0f}" + (f" ch {c.channel}" if c.channel != ch
-                                                     else ""),
-                        (x, y + 5.0), fontsize=7, ha="center", va="bottom",
-                        color=COLOURS["orange"])
+            ax.annotate(f"{c.frequency_hz:,.0f} Hz" + (f", ch {c.channel}" if c.channel != ch
+                                                        else ""),
+                        (x, y), xytext=(0, 7), textcoords="offset points", fontsize=7,
+                        ha="center", va="bottom", color=COLOURS["black"], gid="interferer")
+        top = max(float(np.max(spec.power_dbfs[ch])), float(np.max(lvl)))
+        bottom = float(np.min(spec.power_dbfs[ch]))
+        ax.set_ylim(bottom - 1.0, top + 0.25 * (top - bottom) + 1.0)
     if not spec.carriers:
         ax.text(0.5, 0.95, "no bin's power is keyed", transform=ax.transAxes, ha="center",
                 va="top", fontsize=9, color=COLOURS["vermillion"])
     lines = ax.get_legend_handles_labels()
     lines2 = twin.get_legend_handles_labels()
-    ax.legend(lines[0] + lines2[0], lines[1] + lines2[1], fontsize=6.5, loc="upper right",
-              framealpha=0.8)
+    # below the axis, where it hides no peak
+    ax.legend(lines[0] + lines2[0], lines[1] + lines2[1], fontsize=7, ncol=2,
+              loc="upper center", bbox_to_anchor=(0.5, -0.22), frameon=False)
 
 
 def _draw_fine_spectrum(ax: Axes, result: Reception) -> None:
@@ -316,7 +326,7 @@ def _draw_fine_spectrum(ax: Axes, result: Reception) -> None:
     keep = np.abs(freq) <= base.half_band_hz
     floor = float(np.median(power[keep]))
     db = 10 * np.log10(np.maximum(power[keep], 1e-30) / max(floor, 1e-30))
-    ax.plot(freq[keep], db, color=COLOURS["black"], lw=0.9)
+    ax.plot(freq[keep], db, color=COLOURS["black"], lw=0.9, gid="welch")
     ax.set_xlabel(f"offset from the carrier ({base.carrier_hz:,.1f} Hz), Hz")
     ax.set_ylabel("power over noise floor, dB")
     bw = _detection_bandwidth_hz(result)
@@ -335,7 +345,8 @@ def _draw_fine_spectrum(ax: Axes, result: Reception) -> None:
         if near:
             ax.plot([], [], color=COLOURS["orange"], ls="--", label="keyed, not decoded")
     ax.set_xlim(-base.half_band_hz, base.half_band_hz)
-    ax.legend(fontsize=7, loc="upper right")
+    ax.legend(fontsize=7, ncol=2, loc="upper center", bbox_to_anchor=(0.5, -0.22),
+              frameon=False)
 
 
 def _welch(z: np.ndarray, rate_hz: float, nper: int) -> tuple[np.ndarray, np.ndarray]:
