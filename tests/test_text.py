@@ -23,9 +23,9 @@ from okdecode.text import (
     units,
 )
 
-# ITU-R M.1677-1 (2009), "International Morse code", part I, section 1, typed here from the
-# Recommendation rather than taken from okdecode: letters (1.1.1), figures (1.1.2),
-# punctuation marks and miscellaneous signs (1.1.3). "." is a dot, "-" a dash.
+# ITU-R M.1677-1 (2009), "International Morse code", part I, section 1, written out here
+# (from memory of the Recommendation) rather than taken from okdecode: letters (1.1.1),
+# figures (1.1.2), punctuation marks and miscellaneous signs (1.1.3). "." dot, "-" dash.
 ITU_LETTERS = {
     "A": ".-", "B": "-...", "C": "-.-.", "D": "-..", "E": ".", "É": "..-..",  # accented e
     "F": "..-.", "G": "--.", "H": "....", "I": "..", "J": ".---", "K": "-.-", "L": ".-..",
