@@ -27,7 +27,7 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -68,6 +68,8 @@ class Carrier:
     score: float  # largest segment z-score of the summed power autocorrelation
     keyed_power: float  # summed autocovariance of bin power, relative to the noise floor²
     level_db: float  # mean bin power over the noise floor, dB
+    width_hz: float = 0.0  # span of the keyed bins around it (wide: a pulsed carrier), Hz
+    centroid_hz: float | None = None  # power-weighted centre of that span, absolute, Hz
 
 
 @dataclass(frozen=True)
@@ -227,19 +229,47 @@ class KeyingSearch:
                 continue
             if taken[:, b].any():
                 continue
-            # a carrier owns its neighbours: the Hann main lobe and near leakage
-            lo, hi = max(0, b - 3), min(self.n_bins, b + 4)
-            # the same carrier in another channel is not another carrier
-            taken[:, lo:hi] = True
+            lo, hi = _keyed_span(keyed_power[ch], z[ch], b, threshold)
+            width_hz = (hi - lo) * bin_hz
+            excess = np.maximum(mean[ch, lo:hi] - floor[ch, 0], 0.0)
+            centroid = (float(np.sum(freq[lo:hi] * excess) / np.sum(excess))
+                        if excess.sum() > 0 else None)
+            # a carrier owns its neighbours (the Hann main lobe and near leakage) and the
+            # span its keying spreads over; the same carrier in another channel is not
+            # another carrier
+            taken[:, max(0, min(lo, b - 3)) : min(self.n_bins, max(hi, b + 4))] = True
             found.append(Carrier(frequency_hz=float(freq[b] + _peak_offset(mean[ch], b) * bin_hz),
                                  channel=int(ch), score=float(z[ch, b]),
                                  keyed_power=float(keyed_power[ch, b]),
-                                 level_db=float(10 * np.log10(mean[ch, b] / floor[ch, 0]))))
+                                 level_db=float(10 * np.log10(mean[ch, b] / floor[ch, 0])),
+                                 width_hz=float(width_hz), centroid_hz=centroid))
             if len(found) >= max_candidates:
                 break
         return Spectrum(frequency_hz=freq, power_dbfs=10 * np.log10(np.maximum(mean, 1e-30)),
                         score=z, threshold=threshold, carriers=tuple(found), bin_hz=bin_hz,
                         n_frames=self.n_frames)
+
+
+def _keyed_span(keyed: np.ndarray, z: np.ndarray, b: int, threshold: float,
+                max_gap: int = 3) -> tuple[int, int]:
+    """Bins [lo, hi) around b that are keyed at a tenth of b's keyed power or more.
+
+    Gaps of up to ``max_gap`` bins are bridged, so the comb of a spark train counts as
+    one carrier.
+    """
+    ok = (keyed >= 0.1 * keyed[b]) & (z >= threshold)
+    lo = hi = b
+    gap = 0
+    while lo > 0 and gap <= max_gap:
+        lo -= 1
+        gap = 0 if ok[lo] else gap + 1
+    lo += gap
+    gap = 0
+    while hi < keyed.size - 1 and gap <= max_gap:
+        hi += 1
+        gap = 0 if ok[hi] else gap + 1
+    hi -= gap
+    return lo, hi + 1
 
 
 def _peak_offset(power: np.ndarray, b: int) -> float:
@@ -408,28 +438,72 @@ class Downconverter:
     is_complex : bool
         Whether the input is complex (I/Q).
     half_band_hz : float
-        Half-width of the band protected from aliasing, Hz.
+        Half-width of the band protected from aliasing in the output, Hz.
+    wide_half_band_hz : float, optional
+        For a pulsed or damped-wave carrier, whose key-down spreads over a band far
+        wider than keying: the chain first decimates to a rate that keeps
+        ``±wide_half_band_hz``, takes the power there (so the bursts are summed
+        noncoherently, whatever their phases), and decimates that power alongside the
+        narrow baseband; :meth:`take_power` hands it out. Also kept: the spectrum of
+        that power's fluctuations, where a spark train shows its rate.
     """
 
     def __init__(self, *, rate_hz: float, carrier_hz: float, is_complex: bool,
                  half_band_hz: float = BASEBAND_HALF_BAND_HZ,
-                 min_out_hz: float = BASEBAND_MIN_HZ):
+                 min_out_hz: float = BASEBAND_MIN_HZ,
+                 wide_half_band_hz: float | None = None):
         self.rate_hz, self.carrier_hz, self.is_complex = rate_hz, carrier_hz, is_complex
-        self.factors = plan_decimation(rate_hz, min_out_hz=min_out_hz)
+        self.wide_half_band_hz = wide_half_band_hz
+        wide = wide_half_band_hz is not None and wide_half_band_hz > half_band_hz
+        if wide:
+            first = plan_decimation(rate_hz, min_out_hz=2.2 * wide_half_band_hz)
+        else:
+            first = plan_decimation(rate_hz, min_out_hz=min_out_hz)
         self.stages: list[tuple[FirDecimator, FirDecimator]] = []
         rate = rate_hz
         offset = 0.0  # time of output 0 after input 0, s
-        for factor in self.factors:
-            taps = design_stage(rate, factor, half_band_hz)
+        for factor in first:
+            taps = design_stage(rate, factor, wide_half_band_hz if wide else half_band_hz)
             self.stages.append((FirDecimator(taps, factor), FirDecimator(taps, factor)))
             offset += self.stages[-1][0].start_offset / rate
             rate /= factor
+        self.wide_rate_hz = rate
+        # the narrow branch and, for a wide carrier, its power branch, with equal filters
+        # so their outputs stay aligned
+        self.narrow: list[tuple[FirDecimator, FirDecimator]] = []
+        self.power_stages: list[FirDecimator] = []
+        self.power_bandwidth_hz: float | None = None
+        if wide:
+            self.power_bandwidth_hz = self._chain_noise_bandwidth_hz()
+            for factor in plan_decimation(rate, min_out_hz=min_out_hz):
+                taps = design_stage(rate, factor, half_band_hz)
+                self.narrow.append((FirDecimator(taps, factor), FirDecimator(taps, factor)))
+                self.power_stages.append(FirDecimator(taps, factor))
+                offset += self.narrow[-1][0].start_offset / rate
+                rate /= factor
+        self.factors = first + [st[0].factor for st in self.narrow]
         self.out_rate_hz = rate
         self.start_s = offset
+        self._power_parts: list[np.ndarray] = []
+        self._pulse = _PulseSpectrum(self.wide_rate_hz) if wide else None
         self._step_rad = 2 * math.pi * carrier_hz / rate_hz
         self._phase_rad = 0.0
         self._table_len = 0
         self._cos = self._sin = np.empty(0, dtype=np.float32)
+
+    def _chain_noise_bandwidth_hz(self) -> float:
+        """Two-sided noise bandwidth of the first stages, at their output, Hz."""
+        from scipy import signal
+
+        f = np.linspace(-self.wide_rate_hz / 2, self.wide_rate_hz / 2, 4097)
+        h = np.ones(f.size, dtype=complex)
+        rate = self.rate_hz
+        for dec, _ in self.stages:
+            taps = dec._g[::-1].ravel()
+            h *= signal.freqz(taps, worN=f, fs=rate)[1]
+            rate /= dec.factor
+        gain = np.abs(h) ** 2
+        return float(np.trapezoid(gain, f) / gain[f.size // 2])
 
     def _tables(self, n: int) -> tuple[np.ndarray, np.ndarray]:
         if n > self._table_len:
@@ -459,17 +533,90 @@ class Downconverter:
         self._phase_rad = (self._phase_rad + self._step_rad * n) % (2 * math.pi)
         for dec_i, dec_q in self.stages:
             i_part, q_part = dec_i.process(i_part), dec_q.process(q_part)
+        if self._pulse is not None:
+            power = i_part * i_part + q_part * q_part
+            self._pulse.process(power)
+            for dec in self.power_stages:
+                power = dec.process(power)
+            self._power_parts.append(power)
+            for dec_i, dec_q in self.narrow:
+                i_part, q_part = dec_i.process(i_part), dec_q.process(q_part)
         out = np.empty(i_part.size, dtype=np.complex64)
         out.real, out.imag = i_part, q_part
         return out
 
+    def take_power(self) -> np.ndarray:
+        """Power of the wide band made since the last call (float32), at the output rate."""
+        parts, self._power_parts = self._power_parts, []
+        return np.concatenate(parts) if parts else np.empty(0, dtype=np.float32)
+
+    def pulse_spectrum(self) -> tuple[np.ndarray, np.ndarray] | None:
+        """Frequencies (Hz) and mean spectrum of the wide power's fluctuations, or None."""
+        return None if self._pulse is None else self._pulse.result()
+
     def flush(self) -> np.ndarray:
         """Push zeros through so the last input samples come out, then reset."""
         n, scale = 0, 1
-        for dec, _ in self.stages:  # each stage's history, in input samples
+        for dec, _ in self.stages + self.narrow:  # each stage's history, in input samples
             n += dec.n_branches * dec.factor * scale
             scale *= dec.factor
         return self.process(np.zeros(n, dtype=np.complex64 if self.is_complex else np.float32))
+
+
+class _PulseSpectrum:
+    """Welch average of a power stream's spectrum (mean removed per segment)."""
+
+    def __init__(self, rate_hz: float, segment_s: float = 0.5):
+        self.rate_hz = rate_hz
+        self.n = max(64, 1 << int(math.ceil(math.log2(segment_s * rate_hz))))
+        self._window = np.hanning(self.n).astype(np.float32)
+        self._pending = np.empty(0, dtype=np.float32)
+        self._sum = np.zeros(self.n // 2 + 1)
+        self._count = 0
+
+    def process(self, power: np.ndarray) -> None:
+        buf = np.concatenate([self._pending, power])
+        k = buf.size // self.n
+        self._pending = buf[k * self.n :]
+        if k:
+            seg = buf[: k * self.n].reshape(k, self.n)
+            seg = (seg - seg.mean(axis=1, keepdims=True)) * self._window
+            spec = np.fft.rfft(seg, axis=1)
+            self._sum += (spec.real**2 + spec.imag**2).sum(axis=0)
+            self._count += k
+
+    def result(self) -> tuple[np.ndarray, np.ndarray] | None:
+        if self._count == 0:
+            return None
+        return np.fft.rfftfreq(self.n, 1.0 / self.rate_hz), self._sum / self._count
+
+
+def spark_rate_hz(freq_hz: np.ndarray, spectrum: np.ndarray, *,
+                  min_hz: float = 50.0) -> float | None:
+    """Repetition rate of a pulse train from the spectrum of its power, Hz, or None.
+
+    A train of bursts at rate r puts lines at r, 2r, 3r, ... into the spectrum of its
+    power. The strongest line that stands 10 dB above the median level is taken, then
+    the lowest of its subharmonics r/2, r/3, r/4 that still holds a line at least a
+    third as strong (the fundamental of a train can be weaker than its harmonics).
+    """
+    band = (freq_hz >= min_hz) & (freq_hz <= 0.9 * freq_hz[-1])
+    if band.sum() < 16:
+        return None
+    f, p = freq_hz[band], spectrum[band]
+    floor = float(np.median(p))
+    peak = int(np.argmax(p))
+    if floor <= 0 or p[peak] < 10.0 * floor:
+        return None
+    best = float(f[peak])
+    df = f[1] - f[0]
+    for k in (4, 3, 2):
+        sub = best / k
+        near = np.abs(f - sub) <= max(2 * df, 0.02 * sub)
+        if sub >= min_hz and near.any() and p[near].max() >= p[peak] / 3.0:
+            i = np.flatnonzero(near)[np.argmax(p[near])]
+            return float(f[i] + _peak_offset(p, int(i)) * df)
+    return float(best + _peak_offset(p, peak) * df)
 
 
 @dataclass(frozen=True)
@@ -483,10 +630,16 @@ class Baseband:
     channel: int
     duration_s: float  # of the capture
     half_band_hz: float  # protected band |f| < half_band_hz
+    # a pulsed or damped-wave carrier: the power of its whole band, noncoherently
+    # (float32, same times as samples), that band's two-sided noise bandwidth, and the
+    # repetition rate of its bursts when one shows
+    power: np.ndarray | None = field(default=None, repr=False)
+    power_bandwidth_hz: float | None = None
+    spark_rate_hz: float | None = None
 
 
 def tune(capture: Capture, carrier_hz: float, *, channel: int = 0,
-         progress=None) -> Baseband:
+         wide_half_band_hz: float | None = None, progress=None) -> Baseband:
     """Mix a capture's carrier to 0 Hz and decimate it to about 1 kHz (one pass).
 
     Parameters
@@ -496,6 +649,8 @@ def tune(capture: Capture, carrier_hz: float, *, channel: int = 0,
         Absolute carrier frequency, Hz.
     channel : int
         Channel index.
+    wide_half_band_hz : float, optional
+        Half-width of a pulsed carrier's band, Hz: see :class:`Downconverter`.
     progress : callable, optional
         Called with the number of samples handled after each block.
 
@@ -515,19 +670,30 @@ def tune(capture: Capture, carrier_hz: float, *, channel: int = 0,
     if not 0 <= channel < capture.n_channels:
         raise ParameterError(capture.source, f"channel {channel} does not exist",
                              expected=f"0 to {capture.n_channels - 1}")
+    if wide_half_band_hz is not None:
+        wide_half_band_hz = min(wide_half_band_hz, 0.4 * capture.rate_hz)
     dc = Downconverter(rate_hz=capture.rate_hz, carrier_hz=rel_hz,
-                       is_complex=capture.is_complex)
-    parts = []
+                       is_complex=capture.is_complex, wide_half_band_hz=wide_half_band_hz)
+    parts, power_parts = [], []
     for block in capture.blocks():
         parts.append(dc.process(block[:, channel]))
+        power_parts.append(dc.take_power())
         if progress is not None:
             progress(block.shape[0])
     parts.append(dc.flush())
+    power_parts.append(dc.take_power())
     samples = np.concatenate(parts)
-    n_keep = int(math.ceil((capture.duration_s - dc.start_s) * dc.out_rate_hz))
-    return Baseband(samples=samples[: max(n_keep, 0)], rate_hz=dc.out_rate_hz,
+    n_keep = max(int(math.ceil((capture.duration_s - dc.start_s) * dc.out_rate_hz)), 0)
+    power = spark = None
+    if dc.power_bandwidth_hz is not None:
+        power = np.concatenate(power_parts)[:n_keep]
+        pulses = dc.pulse_spectrum()
+        spark = spark_rate_hz(*pulses) if pulses is not None else None
+    return Baseband(samples=samples[:n_keep], rate_hz=dc.out_rate_hz,
                     start_s=dc.start_s, carrier_hz=float(carrier_hz), channel=channel,
-                    duration_s=capture.duration_s, half_band_hz=BASEBAND_HALF_BAND_HZ)
+                    duration_s=capture.duration_s, half_band_hz=BASEBAND_HALF_BAND_HZ,
+                    power=power, power_bandwidth_hz=dc.power_bandwidth_hz,
+                    spark_rate_hz=spark)
 
 
 def fine_offset_hz(baseband: Baseband, *, max_offset_hz: float) -> float:
@@ -561,10 +727,8 @@ def shift(baseband: Baseband, offset_hz: float) -> Baseband:
     phase = np.mod(2 * np.pi * offset_hz * (baseband.start_s + n / baseband.rate_hz), 2 * np.pi)
     lo = np.empty(n.size, dtype=np.complex64)
     lo.real, lo.imag = np.cos(phase), -np.sin(phase)
-    return Baseband(samples=baseband.samples * lo, rate_hz=baseband.rate_hz,
-                    start_s=baseband.start_s, carrier_hz=baseband.carrier_hz + offset_hz,
-                    channel=baseband.channel, duration_s=baseband.duration_s,
-                    half_band_hz=baseband.half_band_hz)
+    return replace(baseband, samples=baseband.samples * lo,
+                   carrier_hz=baseband.carrier_hz + offset_hz)
 
 
 # ---------------------------------------------------------------------------------------
@@ -675,6 +839,8 @@ def envelope(baseband: Baseband, *, filter_s: float, source: str = "",
     # eight samples per filter length are plenty: the moving average passes little
     # above 1 / filter_s, and its ramps are straight between samples
     step = max(1, n // ENVELOPE_SAMPLES_PER_FILTER)
+    if baseband.power is not None:
+        return _power_envelope(baseband, n, step, source)
     y = moving_average(baseband.samples, n, step=step)
     bw_hz = noise_bandwidth_hz(n, baseband.rate_hz)
     if density is None:
@@ -685,3 +851,22 @@ def envelope(baseband: Baseband, *, filter_s: float, source: str = "",
                     start_s=baseband.start_s, filter_s=n / baseband.rate_hz,
                     noise_bandwidth_hz=bw_hz, carrier_hz=baseband.carrier_hz, source=source,
                     noise_sigma=sigma)
+
+
+def _power_envelope(baseband: Baseband, n: int, step: int, source: str) -> Envelope:
+    """Envelope of a pulsed carrier: root of the moving average of its band's power.
+
+    The bursts of a spark transmitter have random phases, so they add in power, not in
+    amplitude; averaging the power over the filter length bridges the gaps between
+    bursts. Noise alone gives a nearly constant level here (many independent samples
+    averaged), so its Rayleigh-equivalent ``sigma`` is taken from the 10 % quantile of
+    the envelope: key-up fills more than a third of any Morse transmission.
+    """
+    p = moving_average(baseband.power, n, step=step).real
+    magnitude = np.sqrt(np.maximum(p, 0.0))
+    floor = float(np.quantile(magnitude, 0.1)) if magnitude.size else 0.0
+    sigma = np.full(magnitude.size, floor / math.sqrt(2.0))
+    return Envelope(magnitude=magnitude, rate_hz=baseband.rate_hz / step,
+                    start_s=baseband.start_s, filter_s=n / baseband.rate_hz,
+                    noise_bandwidth_hz=float(baseband.power_bandwidth_hz or 0.0),
+                    carrier_hz=baseband.carrier_hz, source=source, noise_sigma=sigma)

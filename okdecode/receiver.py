@@ -9,7 +9,7 @@ again with the moving average matched to the dot (re-tuning to the speed).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from os import PathLike
 
 import numpy as np
@@ -27,6 +27,11 @@ DECODERS = ("threshold",)
 FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096)
 #: Length of the stretch of a long recording on which the filter length is chosen, s.
 SELECT_SPAN_S = 120.0
+#: A keyed carrier spread wider than this is taken for a pulsed (spark) one, Hz. On-off
+#: keying at 50 WPM with 5 ms edges spreads a steady carrier over about 200 Hz.
+WIDE_CARRIER_HZ = 600.0
+#: Widest band summed for a pulsed carrier, Hz (each side).
+MAX_WIDE_HALF_BAND_HZ = 12000.0
 
 
 @dataclass(frozen=True)
@@ -84,6 +89,7 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
     spectrum = None
     carrier = opts.carrier_hz
     chan = opts.channel
+    wide_hz = None  # half band of a pulsed carrier
     if carrier is None or (chan is None and capture.n_channels > 1):
         spectrum = bb.search_carriers(capture, progress=progress)
         found = [c for c in spectrum.carriers if chan is None or c.channel == chan]
@@ -106,20 +112,42 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
                     notes.append(f"channel {chan} has the strongest keyed signal")
             if carrier is None:
                 carrier = best.frequency_hz
-            if len(found) > 1:
-                others = ", ".join(f"{c.frequency_hz:.0f}" for c in found[1:4])
-                notes.append(f"other keyed carriers at {others} Hz")
+            if best.width_hz > WIDE_CARRIER_HZ:
+                # keyed power spread far wider than keying spreads it: damped waves or a
+                # pulse train, whose bursts add in power
+                wide_hz = min(0.75 * best.width_hz + spectrum.bin_hz, MAX_WIDE_HALF_BAND_HZ)
+                notes.append(f"pulsed or damped-wave carrier, {best.width_hz:.0f} Hz wide; "
+                             "bursts are summed in power")
+            # a spark train's comb reaches past its span: its lines are not other stations
+            reach_hz = 2 * best.width_hz if wide_hz is not None else 0.0
+            others = [c for c in found[1:] if abs(c.frequency_hz - best.frequency_hz) > reach_hz]
+            if others:
+                listed = ", ".join(f"{c.frequency_hz:.0f}" for c in others[:3])
+                notes.append(f"other keyed carriers at {listed} Hz")
     chan = 0 if chan is None else chan
-    base = bb.tune(capture, carrier, channel=chan, progress=progress)
-    search_bin = spectrum.bin_hz if spectrum is not None else 0.0
-    max_off = max(1.0 * search_bin, 25.0) if opts.carrier_hz is None else 40.0
-    part, _ = _busiest(base, base.samples, span_s=SELECT_SPAN_S)
-    base = bb.shift(base, bb.fine_offset_hz(part, max_offset_hz=max_off))
-    return _decode_baseband(base, capture, opts, warnings, notes, spectrum)
+    base = bb.tune(capture, carrier, channel=chan, wide_half_band_hz=wide_hz,
+                   progress=progress)
+    extra = {"spark_rate_hz": None, "ringing_hz": None}
+    if base.power is None:
+        search_bin = spectrum.bin_hz if spectrum is not None else 0.0
+        max_off = max(1.0 * search_bin, 25.0) if opts.carrier_hz is None else 40.0
+        part, _ = _busiest(base, base.samples, span_s=SELECT_SPAN_S)
+        base = bb.shift(base, bb.fine_offset_hz(part, max_offset_hz=max_off))
+    else:
+        extra["ringing_hz"] = _round_or_none(best.centroid_hz, 1)
+        extra["spark_rate_hz"] = _round_or_none(base.spark_rate_hz, 1)
+        if base.spark_rate_hz is not None:
+            notes.append(f"spark rate {base.spark_rate_hz:.0f} Hz, ringing near "
+                         f"{best.centroid_hz:.0f} Hz")
+    return _decode_baseband(base, capture, opts, warnings, notes, spectrum, extra)
+
+
+def _round_or_none(v: float | None, nd: int) -> float | None:
+    return None if v is None else round(float(v), nd)
 
 
 def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warnings, notes,
-                     spectrum) -> report.Reception:
+                     spectrum, extra: dict) -> report.Reception:
     source = capture.source
     density = bb.noise_density(base)
     # the filter length is chosen on the busiest stretch of a long recording
@@ -152,7 +180,7 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
                             rate_hz=capture.rate_hz, channel=base.channel,
                             decoder=opts.decoder, warnings=warnings, notes=notes,
                             spectrum=spectrum, carrier_hz=base.carrier_hz, baseband=base,
-                            envelope=env, marks=found)
+                            envelope=env, marks=found, extra=extra)
     level = report.measure(base, found, dot_s=syms.dot_s or env.filter_s,
                            detection_bandwidth_hz=env.noise_bandwidth_hz,
                            is_complex=capture.is_complex)
@@ -168,7 +196,7 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
                            envelope=env, baseband=base, level=level,
                            duration_s=capture.duration_s, rate_hz=capture.rate_hz,
                            channel=base.channel, decoder=opts.decoder, warnings=warnings,
-                           notes=notes, spectrum=spectrum)
+                           notes=notes, spectrum=spectrum, extra=extra)
 
 
 def _busiest(base: bb.Baseband, density: np.ndarray, *, span_s: float
@@ -187,10 +215,8 @@ def _busiest(base: bb.Baseband, density: np.ndarray, *, span_s: float
     run = np.convolve(var, np.ones(k), mode="valid")
     first = int(np.argmax(run)) * chunk
     sl = slice(first, first + k * chunk)
-    part = bb.Baseband(samples=base.samples[sl], rate_hz=rate,
-                       start_s=base.start_s + first / rate, carrier_hz=base.carrier_hz,
-                       channel=base.channel, duration_s=base.duration_s,
-                       half_band_hz=base.half_band_hz)
+    part = replace(base, samples=base.samples[sl], start_s=base.start_s + first / rate,
+                   power=None if base.power is None else base.power[sl])
     return part, density[sl]
 
 

@@ -201,12 +201,16 @@ def measure(baseband: Baseband, marks: Marks, *, dot_s: float, detection_bandwid
         return none
     rate = baseband.rate_hz
     h = measurement_filter(rate, dot_s)
-    bw_hz = rate * float(np.sum(h**2))
-    y = signal.oaconvolve(baseband.samples, h.astype(np.float32), mode="same")
     # a few samples per quarter dot are enough for means over mark and space interiors
     step = max(1, int(0.25 * dot_s * rate) // 4)
-    y = y[::step]
-    p = y.real.astype(np.float64) ** 2 + y.imag.astype(np.float64) ** 2
+    if baseband.power is not None and baseband.power_bandwidth_hz:
+        # a pulsed carrier: its whole band's power, in the band's noise bandwidth
+        bw_hz = baseband.power_bandwidth_hz
+        p = signal.oaconvolve(baseband.power.astype(np.float64), h, mode="same")[::step]
+    else:
+        bw_hz = rate * float(np.sum(h**2))
+        y = signal.oaconvolve(baseband.samples, h.astype(np.float32), mode="same")[::step]
+        p = y.real.astype(np.float64) ** 2 + y.imag.astype(np.float64) ** 2
     t = baseband.start_s + np.arange(p.size) * (step / rate)
     guard = 0.5 * h.size / rate + 0.002
     on = interiors(marks.start_s, marks.end_s, t, guard)
@@ -248,11 +252,13 @@ def assemble(*, file: str, decoded: Decoded, symbols: Symbols, marks: Marks,
 def empty(*, file: str, duration_s: float, rate_hz: float, channel: int | None,
           decoder: str, warnings: list[str], notes: list[str], spectrum: object = None,
           carrier_hz: float | None = None, baseband: Baseband | None = None,
-          envelope: Envelope | None = None, marks: Marks | None = None) -> Reception:
+          envelope: Envelope | None = None, marks: Marks | None = None,
+          extra: dict | None = None) -> Reception:
     """A Reception with nothing decoded."""
     return Reception(file=file, text="", carrier_hz=carrier_hz, wpm=None, farnsworth_wpm=None,
                      level=Level(None, None, None, None, None), duration_s=duration_s,
                      timing=Timing(*([None] * 10)), characters=(), n_unknown=0,
                      channel=channel, rate_hz=rate_hz, decoder=decoder,
                      warnings=tuple(warnings), notes=tuple(notes), spectrum=spectrum,
-                     baseband=baseband, envelope=envelope, marks=marks)
+                     baseband=baseband, envelope=envelope, marks=marks,
+                     extra={"spark_rate_hz": None, "ringing_hz": None, **(extra or {})})
