@@ -78,11 +78,11 @@ COHERENT_S = 0.03
 #: coarse grid's points are about independent under noise and count as tests.
 COARSE_UNITS = 1.0
 #: The same for the fine grid searched around the best coarse fits.
-FINE_UNITS = 0.12
+FINE_UNITS = 0.25
 #: Start times per dot on the coarse and the fine grid.
 COARSE_PER_UNIT, FINE_PER_UNIT = 2, 6
 #: Coarse fits searched again on the fine grid.
-N_REFINE = 8
+N_REFINE = 4
 #: Default false-alarm probability of a detection (the issue's 1 %).
 ALPHA = 0.01
 #: Largest share of the mark cells' excess energy that the space cells may hold.
@@ -175,28 +175,44 @@ def layout(expected: str, *, source: str = "<text>") -> Layout:
     return Layout(key_down=down, units=units, stretchable=(~down) & (units >= 3))
 
 
-def cells(lay: Layout, stretch: float, samples_per_unit: int
-          ) -> tuple[np.ndarray, np.ndarray, int]:
-    """Grid positions of the mark cells and the space cells of a template.
+def cells(lay: Layout, stretch: float | np.ndarray, samples_per_unit: int
+          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Grid positions of the mark cells and the space cells of templates.
+
+    A mark of u units holds u cells; a space of u units holds u cells too, spread evenly
+    over it when it is stretched, so that every stretch has the same number of cells.
+
+    Parameters
+    ----------
+    lay : Layout
+    stretch : float or ndarray, shape (k,)
+        Factor on the 3- and 7-unit gaps, >= 1.
+    samples_per_unit : int
+        Grid points per dot.
 
     Returns
     -------
-    mark_pos, space_pos : ndarray of int
-        Start of each cell on a grid of ``samples_per_unit`` points per dot.
-    last : int
+    mark_pos, space_pos : ndarray of int, shape (n_mark,) or (k, n_mark), (k, n_space)
+        Start of each cell on the grid.
+    last : int or ndarray of int, shape (k,)
         Position of the end of the last mark.
     """
+    r = np.atleast_1d(np.asarray(stretch, dtype=float))[:, None]
     p = samples_per_unit
-    length = np.where(lay.stretchable, lay.units * stretch, lay.units).astype(float)
-    start = np.concatenate([[0.0], np.cumsum(length)[:-1]])
-    # a mark of u units holds u cells; a space holds the whole cells that fit in it
-    n_cells = np.where(lay.key_down, lay.units, np.floor(length + 1e-9)).astype(int)
-    run_of = np.repeat(np.arange(length.size), n_cells)
-    k = np.arange(run_of.size) - np.repeat(np.cumsum(n_cells) - n_cells, n_cells)
-    pos = np.rint(p * (start[run_of] + k)).astype(int)
+    fixed = np.where(lay.stretchable, 0, lay.units).astype(float)
+    gaps = np.where(lay.stretchable, lay.units, 0).astype(float)
+    start = (np.concatenate([[0.0], np.cumsum(fixed)[:-1]])[None, :]
+             + r * np.concatenate([[0.0], np.cumsum(gaps)[:-1]])[None, :])
+    length = fixed[None, :] + r * gaps[None, :]
+    run_of = np.repeat(np.arange(lay.units.size), lay.units)
+    k = np.arange(run_of.size) - np.repeat(np.cumsum(lay.units) - lay.units, lay.units)
+    spacing = length[:, run_of] / lay.units[run_of]  # 1 dot, or the stretched share
+    pos = np.rint(p * (start[:, run_of] + k * spacing)).astype(int)
     is_mark = lay.key_down[run_of]
-    last = int(round(p * (start[-1] + length[-1])))
-    return pos[is_mark], pos[~is_mark], last
+    last = np.rint(p * (start[:, -1] + length[:, -1])).astype(int)
+    if np.ndim(stretch) == 0:
+        return pos[0, is_mark], pos[0, ~is_mark], int(last[0])
+    return pos[:, is_mark], pos[:, ~is_mark], last
 
 
 # ---------------------------------------------------------------------------------------
@@ -335,39 +351,40 @@ def _coarse(energies: CellEnergies, lay: Layout, speeds: np.ndarray, *, max_stre
         energy, step_s, m, v = energies.grid(dot_s, p)
         k = energy.size
         stretches = _stretches(lay, dot_s, duration_s, max_stretch, grid_units)
-        templates = [(r, *cells(lay, r, p)) for r in stretches]
-        templates = [t for t in templates if t[3] < k]
-        if not templates:
+        mpos, spos, last = cells(lay, stretches, p)
+        fit = last < k
+        if not fit.any():
             continue
+        stretches, mpos, spos, last = stretches[fit], mpos[fit], spos[fit], last[fit]
+        n_t = stretches.size
+        # tests: start times one per sub-window; along speed (and stretch, when more
+        # than one is tried) one per sub-window of end misalignment, 2 e m per grid step
+        dims = (2.0 * grid_units * m) ** (1 + (n_t > 1))
         n_fft = fft.next_fast_len(k)
-        bank = np.zeros((len(templates), n_fft), dtype=np.complex128)
-        for i, (_, mpos, spos, _) in enumerate(templates):
-            bank[i, mpos] += 1.0
-            bank[i, spos] += 1j
+        bank = np.zeros((n_t, n_fft), dtype=np.complex128)
+        rows = np.arange(n_t)[:, None]
+        bank[rows, mpos] = 1.0
+        bank[rows, spos] = 1j
         # sum_j q[tau + j] T[j] for T = marks + 1j spaces: mark sums in the real part and
         # space sums in the imaginary part, as q is real
         spec = fft.fft(energy, n_fft)
-        corr = fft.ifft(spec[None, :] * np.conj(fft.fft(np.conj(bank), axis=1)), axis=1,
-                        workers=-1)
-        ratio = np.empty(len(templates))
-        tau = np.empty(len(templates), dtype=int)
-        d1 = np.empty(len(templates))
-        d2 = np.empty(len(templates))
-        for i, (_, mpos, spos, last) in enumerate(templates):
-            n_tau = k - last
-            c = corr[i, :n_tau]
-            q = (c.real / mpos.size) / np.maximum(c.imag / spos.size, 1e-300)
-            tau[i] = int(np.argmax(q))
-            ratio[i] = q[tau[i]]
-            d1[i], d2[i] = 2 * m * mpos.size, 2 * m * spos.size
-            n_tests += max(1.0, n_tau / p)
+        corr = fft.ifft(spec[None, :] * np.conj(fft.fft(np.conj(bank), axis=1, workers=-1)),
+                        axis=1, workers=-1)
+        n_tau = k - last
+        corr = corr[:, : int(n_tau.max())]
+        n_m, n_s = mpos.shape[1], spos.shape[1]
+        q = (corr.real / n_m) / np.maximum(corr.imag / n_s, 1e-300)
+        q[np.arange(q.shape[1])[None, :] >= n_tau[:, None]] = -np.inf
+        tau = np.argmax(q, axis=1)
+        ratio = q[np.arange(n_t), tau]
+        n_tests += float(np.maximum(1.0, n_tau / p).sum()) * m * dims
+        d1, d2 = 2 * m * n_m, 2 * m * n_s
         # P(F > x) = I_{d2/(d2 + d1 x)}(d2/2, d1/2), the regularised incomplete beta
         with np.errstate(divide="ignore"):
             logp = np.log(special.betainc(d2 / 2, d1 / 2, d2 / (d2 + d1 * ratio)))
         for i in np.argsort(logp)[:keep]:
-            r, mpos, spos, _ = templates[i]
-            fits.append(_Fit(float(logp[i]), float(ratio[i]), float(wpm), float(r),
-                             energies.start_s + tau[i] * step_s, mpos.size, spos.size, m, v))
+            fits.append(_Fit(float(logp[i]), float(ratio[i]), float(wpm), float(stretches[i]),
+                             energies.start_s + tau[i] * step_s, n_m, n_s, m, v))
     fits.sort(key=lambda f: f.logp)
     return fits[:keep], n_tests
 
