@@ -77,6 +77,7 @@ class Layout:
     quoted: bool  # data fields carry quotes
     all_quoted: bool  # every data field is quoted (separators may hide inside)
     trailing_sep: bool  # data lines end with a separator
+    integers: bool  # the first data rows hold integers only (codes of an ADC)
     fast: bool  # the vectorised parse applies (False: line by line throughout)
     n_fields: int
     names: tuple[str, ...]  # one per field: the header, or "column 1", ...
@@ -195,9 +196,11 @@ def sniff(head: bytes, *, at_eof: bool, source: str) -> Layout:
     hidden = quoted and not all_quoted and any(sep in f or (sep == " " and " " in f)
                                                for fields in run if fields for f in fields)
     fast = not hidden and not (decimal_comma and sep == "," and not all_quoted)
+    integers = all(re.fullmatch(r"[+-]?\d{1,18}", f) for fields in run if fields for f in fields)
     data_offset = sum(len(raw) + 1 for raw in raw_lines[:start])
     return Layout(sep=sep, decimal_comma=decimal_comma, quoted=quoted, all_quoted=all_quoted,
-                  trailing_sep=trailing_sep, fast=fast, n_fields=n_fields, names=names,
+                  trailing_sep=trailing_sep, integers=integers, fast=fast, n_fields=n_fields,
+                  names=names,
                   units=units, header_line=None if header is None else header + 1,
                   data_line=start + 1, data_offset=data_offset,
                   metadata=tuple(lines[i] for i in filled if i < meta_end))
@@ -272,7 +275,7 @@ class _Chunks:
     def __init__(self, f: IO[bytes], first_line: int):
         self._f, self.line = f, first_line  # line: number of the first line of the next chunk
 
-    def __iter__(self) -> Iterator[tuple[bytes, int]]:
+    def __iter__(self) -> Iterator[tuple[bytes, int, int]]:
         rest = b""
         while True:
             block = self._f.read(CHUNK_BYTES)
@@ -284,15 +287,32 @@ class _Chunks:
                 rest = buf
                 continue
             chunk, rest = buf[: cut + 1], buf[cut + 1 :]
-            first = self.line
-            self.line += chunk.count(b"\n")
-            yield chunk, first
+            first, n_lines = self.line, chunk.count(b"\n")
+            self.line += n_lines
+            yield chunk, first, n_lines
         if rest.strip():
-            yield rest + b"\n", self.line
+            yield rest + b"\n", self.line, 1
 
 
-def _fast_parse(chunk: bytes, layout: Layout) -> np.ndarray | None:
-    """All numbers of a chunk by one vectorised pass, or None where it does not apply."""
+def _fromstring(text: bytes, dtype: type, sep: str, size: int) -> np.ndarray | None:
+    """``numpy.fromstring`` of exactly ``size`` numbers, or None."""
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")  # "could not be read to its end" is a warning
+            values = np.fromstring(text, dtype=dtype, sep=sep)
+    except (ValueError, DeprecationWarning):
+        return None
+    return values if values.size == size else None
+
+
+def _fast_parse(chunk: bytes, layout: Layout, n_rows: int) -> np.ndarray | None:
+    """All numbers of a chunk of ``n_rows`` lines in one vectorised pass, or None.
+
+    The numbers come as float64, or as int64 where every field is an integer.
+
+    None means this path does not apply (a blank line, a word, a missing field, ...):
+    the caller parses the chunk line by line.
+    """
     n = layout.n_fields
     work = chunk
     sep = layout.sep.encode()
@@ -305,9 +325,9 @@ def _fast_parse(chunk: bytes, layout: Layout) -> np.ndarray | None:
         work = work.replace(b",", b".")
     if layout.trailing_sep:
         work = work.replace(sep + b"\r\n", b"\n").replace(sep + b"\n", b"\n")
-    n_rows = work.count(b"\n")
-    u = np.frombuffer(work, dtype=np.uint8)
     if layout.sep == " ":
+        # fields start after blanks; every line must have n of them
+        u = np.frombuffer(work, dtype=np.uint8)
         blank = (u == 32) | (u == 9) | (u == 13) | (u == 10)
         starts = np.flatnonzero(~blank[1:] & blank[:-1]) + 1
         if u.size and not blank[0]:
@@ -316,23 +336,27 @@ def _fast_parse(chunk: bytes, layout: Layout) -> np.ndarray | None:
         per_line = np.diff(np.searchsorted(starts, ends), prepend=0)
         if ends.size != n_rows or not (per_line == n).all():
             return None
-        text = work
-        fsep = " "
+        text, fsep = work, " "
     else:
-        tokens = np.flatnonzero((u == sep[0]) | (u == 10))
-        if tokens.size != n_rows * n or (n > 1 and not (u[tokens[n - 1 :: n]] == 10).all()):
-            return None
-        text = work.replace(b"\n", sep)
-        fsep = sep.decode()
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")
-            values = np.fromstring(text, dtype=np.float64, sep=fsep)
-    except (ValueError, DeprecationWarning):
-        return None
-    if values.size != n_rows * n:
-        return None
-    return values.reshape(n_rows, n)
+        if n == 1:
+            if sep in work:  # a line with more than one field
+                return None
+        else:
+            u = np.frombuffer(work, dtype=np.uint8)
+            tokens = np.flatnonzero((u == sep[0]) | (u == 10))
+            if tokens.size != n_rows * n or not (u[tokens[n - 1 :: n]] == 10).all():
+                return None
+        # separators where the line ends: fromstring then reads the chunk as one list
+        text, fsep = work.replace(b"\n", sep), sep.decode()
+    if layout.integers:
+        # integers parse several times faster than floats; int64 saturates silently on
+        # overflow, so a saturated value sends the chunk to the float parse
+        codes = _fromstring(text, np.int64, fsep, n_rows * n)
+        if codes is not None and codes.size and codes.max() < 2**63 - 1 and (
+                codes.min() > -(2**63)):
+            return codes.reshape(n_rows, n)  # int64: finite, and within float32's range
+    values = _fromstring(text, np.float64, fsep, n_rows * n)
+    return None if values is None else values.reshape(n_rows, n)
 
 
 def _parse_lines(chunk: bytes, layout: Layout, first_line: int, *, source: str
@@ -539,14 +563,16 @@ def _read(f: IO[bytes], source: str, *, rate_hz: float | None, columns: object) 
     stats = _TimeStats()
     time_name = layout.names[time_col] if time_col is not None else ""
     f.seek(bom + layout.data_offset)
-    for chunk, first_line in _Chunks(f, layout.data_line):
-        values = _fast_parse(chunk, layout) if layout.fast else None
+    for chunk, first_line, n_lines in _Chunks(f, layout.data_line):
+        values = _fast_parse(chunk, layout, n_lines) if layout.fast else None
         lines: np.ndarray | int = first_line
         if values is None:
             values, lines = _parse_lines(chunk, layout, first_line, source=source)
-        _check_values(values, lines, layout, source)
+        if values.dtype.kind == "f":
+            _check_values(values, lines, layout, source)
         if time_col is not None:
-            stats.add(values[:, time_col] * time_scale, lines, source=source, name=time_name)
+            stats.add(values[:, time_col] * float(time_scale), lines, source=source,
+                      name=time_name)
         store.append(values[:, chosen])
     n_rows = store.n_rows
     if n_rows < 2:
