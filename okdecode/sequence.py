@@ -1,0 +1,831 @@
+"""Soft-decision sequence decoder: the marks and their classes decided on the whole sequence.
+
+The threshold path (:mod:`okdecode.marks`, :mod:`okdecode.symbols`) decides key-down
+sample by sample and then classes each mark and space on its own. This module decides the
+whole message at once, from the complex baseband, with the code's structure built in.
+
+Model
+-----
+*Segments.* A message is a sequence of marks and gaps (a hidden semi-Markov model, with
+explicit durations [1]_). Marks are dots or dashes; gaps are element, character or word
+gaps, or pauses of any length. Which element may follow which is given by the tree of
+the ITU-R M.1677-1 patterns [2]_: a mark moves one step down the tree, an element gap
+keeps the position, and a character or word gap may only follow a mark that completes a
+pattern of the table, whose character it then emits. So every decoded character is one
+of the table's.
+
+*Time.* The durations are counted in steps of ``1 / STEPS_PER_UNIT`` of the local dot,
+on a time axis warped by the tracked speed: a speed change within the message leaves
+the durations in steps where they were. Each class has a Gaussian law of duration in
+units, its mean and spread measured from the threshold path's classes and then from
+the first pass of this one, which covers weighting, odd dash/dot ratios, hand-sent
+jitter and Farnsworth spacing.
+
+*Evidence.* For a mark from ``t0`` to ``t1`` holding ``L`` baseband samples, the sum
+``y`` of the baseband over it is the matched filter's output for a rectangular pulse of
+unknown phase. With ``A`` the carrier's amplitude in the baseband, ``N0`` the two-sided
+noise density and ``fs`` the baseband rate, ``y`` is Rician with ``|E y| = L A`` under a
+mark and Rayleigh with ``E|y|^2 = L fs N0`` under noise, so the log-likelihood ratio of
+a mark against noise is [3]_
+
+    LLR = ln I0(2 A |y| / (fs N0)) - L A^2 / (fs N0).
+
+Gaps add nothing against the all-noise reference, so a whole hypothesis scores the
+sum of its marks' ratios plus the log-probabilities of its durations and characters.
+``A`` is tracked through fades by a kernel-weighted, noise-corrected mean of
+``|y|^2`` over the decided marks; ``N0`` comes from the envelope's noise measurement.
+
+*Decision.* Viterbi's algorithm [4]_ over the steps gives the most likely sequence;
+since no segment is shorter than ``B`` steps, ``B`` steps at a time are computed
+together. A second pass re-measures speed, amplitude and durations on the first pass's
+decision and decodes again.
+
+*Confidence.* Each mark's confidence is the probability that it is there (the
+logistic of its ratio) times the probability of its class given its length under the
+duration laws; each gap's is the probability of its class given its length.
+
+References
+----------
+.. [1] S.-Z. Yu, "Hidden semi-Markov models", Artificial Intelligence 174(2), 2010.
+.. [2] ITU-R Recommendation M.1677-1, "International Morse code", 2009.
+.. [3] J. G. Proakis and M. Salehi, "Digital Communications", 5th ed., McGraw-Hill,
+   2008, section 4.5 (noncoherent detection; Rice and Rayleigh envelopes).
+.. [4] G. D. Forney, "The Viterbi algorithm", Proc. IEEE 61(3), 1973.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from functools import lru_cache
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from .baseband import Baseband, Envelope, moving_average, noise_density
+from .marks import Marks
+from .symbols import CHARACTER, ELEMENT, WORD, Symbols, farnsworth_wpm
+from .text import PATTERNS, decode
+
+if TYPE_CHECKING:
+    from .report import Reception
+
+#: Steps of the time lattice per dot.
+STEPS_PER_UNIT = 6
+#: Durations are searched over the mean ± this many standard deviations.
+SPAN_SD = 3.5
+#: Log-probability of a pause (a gap longer than any word gap), nats.
+PAUSE_LOG_P = -8.0
+#: Relative weight of a punctuation mark or procedural signal against a letter or figure
+#: in the prior over characters (an assumption about the traffic, not a measured rate).
+RARE_WEIGHT = 0.1
+#: Half-width (standard deviation) of the amplitude tracking kernel, s.
+AMPLITUDE_KERNEL_S = 0.5
+
+
+# ---------------------------------------------------------------------------------------
+# The pattern tree
+
+
+@dataclass(frozen=True)
+class _Tree:
+    prefix: tuple[str, ...]  # node -> its pattern so far; node 0 is the root ""
+    parent: np.ndarray  # shape (n_nodes,), node 0's parent is 0
+    dash: np.ndarray  # shape (n_nodes,), bool: the node's last element is a dash
+    complete: np.ndarray  # shape (n_nodes,), bool: the prefix is a pattern of the table
+    internal: np.ndarray  # shape (n_nodes,), bool: some pattern continues it
+    log_prior: np.ndarray  # shape (n_nodes,), log-probability of the character, complete
+
+
+@lru_cache(maxsize=1)
+def _tree() -> _Tree:
+    prefixes = {""}
+    for pattern in PATTERNS:
+        for i in range(1, len(pattern) + 1):
+            prefixes.add(pattern[:i])
+    # the root, then the nodes reached by a dot, then those reached by a dash
+    order = [""] + sorted((p for p in prefixes if p.endswith(".")), key=lambda p: (len(p), p))
+    order += sorted((p for p in prefixes if p.endswith("-")), key=lambda p: (len(p), p))
+    index = {p: i for i, p in enumerate(order)}
+    parent = np.array([index[p[:-1]] if p else 0 for p in order])
+    dash = np.array([p.endswith("-") for p in order])
+    complete = np.array([p in PATTERNS for p in order])
+    internal = np.array([any(q != p and q.startswith(p) for q in order) for p in order])
+    weight = np.array([(1.0 if PATTERNS[p].isalnum() else RARE_WEIGHT) if p in PATTERNS
+                       else 0.0 for p in order])
+    with np.errstate(divide="ignore"):
+        log_prior = np.log(weight / weight.sum())
+    return _Tree(tuple(order), parent, dash, complete, internal, log_prior)
+
+
+# ---------------------------------------------------------------------------------------
+# Durations
+
+
+@dataclass(frozen=True)
+class Law:
+    """Gaussian law of one class's duration, in units of the local dot."""
+
+    mean: float
+    sd: float
+
+    def steps(self, k: int) -> np.ndarray:
+        """The durations searched, in steps (at least 1)."""
+        # no element is shorter than half its mean (common practice: shorter is a glitch)
+        lo = max(1, int(math.floor(max(self.mean - SPAN_SD * self.sd, 0.5 * self.mean) * k)))
+        hi = max(lo, int(math.ceil((self.mean + SPAN_SD * self.sd) * k)))
+        return np.arange(lo, hi + 1)
+
+    def log_p(self, d: np.ndarray, k: int) -> np.ndarray:
+        """Log-probability of each duration ``d`` in steps (density times the step)."""
+        z = (d / k - self.mean) / self.sd
+        return -0.5 * z * z - math.log(self.sd * k * math.sqrt(2 * math.pi))
+
+
+@dataclass(frozen=True)
+class Durations:
+    """Duration laws of the five classes and how often a word gap ends a character."""
+
+    dot: Law
+    dash: Law
+    element: Law
+    character: Law
+    word: Law
+    p_word: float  # probability that a character is followed by a word gap
+
+
+def _law(x: np.ndarray, nominal: float, *, floor_sd: float) -> Law:
+    """Robust mean and spread of durations in units (median and scaled MAD)."""
+    if x.size >= 3:
+        mean = float(np.median(x))
+        sd = 1.4826 * float(np.median(np.abs(x - mean)))
+    elif x.size:
+        mean, sd = float(np.mean(x)), 0.0
+    else:
+        mean, sd = nominal, 0.0
+    return Law(mean=mean, sd=max(sd, floor_sd, 0.06 * mean))
+
+
+def measure_durations(is_dash: np.ndarray, gap_class: np.ndarray, mark_units: np.ndarray,
+                      gap_units: np.ndarray) -> Durations:
+    """Duration laws from classified marks and gaps, lengths in local units.
+
+    Parameters
+    ----------
+    is_dash : ndarray, shape (n,), bool
+    gap_class : ndarray, shape (n - 1,), ELEMENT, CHARACTER or WORD
+    mark_units, gap_units : ndarray, shapes (n,) and (n - 1,)
+        Lengths in units of the local dot.
+
+    Returns
+    -------
+    Durations
+        Classes with no member take the ITU-R M.1677-1 lengths (1, 3; 1, 3, 7 units),
+        scaled with the character gap where only that was seen (Farnsworth spacing).
+    """
+    dot = _law(mark_units[~is_dash], 1.0, floor_sd=0.1)
+    dash = _law(mark_units[is_dash], 3.0, floor_sd=0.2)
+    element = _law(gap_units[gap_class == ELEMENT], 1.0, floor_sd=0.1)
+    char_units = gap_units[gap_class == CHARACTER]
+    word_units = gap_units[(gap_class == WORD) & (gap_units < 40.0)]
+    character = _law(char_units, 3.0, floor_sd=0.3)
+    word = _law(word_units, 7.0 * character.mean / 3.0, floor_sd=0.7)
+    if word.mean < character.mean + 2 * character.sd:  # keep the word gap apart
+        word = Law(mean=max(word.mean, 7.0 * character.mean / 3.0), sd=word.sd)
+    n_word, n_char = int(word_units.size), int(char_units.size)
+    p_word = (n_word + 0.4) / (n_word + n_char + 2.0)  # 0.2 (five-letter groups) unseen
+    return Durations(dot=dot, dash=dash, element=element, character=character, word=word,
+                     p_word=float(np.clip(p_word, 0.05, 0.5)))
+
+
+# ---------------------------------------------------------------------------------------
+# Evidence
+
+
+@dataclass(frozen=True)
+class _Lattice:
+    time_s: np.ndarray  # shape (T + 1,), time of each step boundary
+    cumsum: np.ndarray  # shape (T + 1,), complex: baseband summed up to each boundary
+    fs: float
+    k: int
+
+
+def _lattice(baseband: Baseband, unit_time_s: np.ndarray, unit_s: np.ndarray,
+             k: int) -> _Lattice:
+    """Step boundaries ``k`` per local dot, and the baseband's running sum at each."""
+    fs = baseband.rate_hz
+    z = baseband.samples
+    n = z.size
+    t_edges = baseband.start_s + (np.arange(n + 1) - 0.5) / fs  # sample k spans its edges
+    u = np.interp(t_edges, unit_time_s, unit_s)
+    phase = np.concatenate([[0.0], np.cumsum(k / u[:-1] / fs)])  # steps elapsed
+    n_steps = int(math.floor(phase[-1]))
+    time_s = np.interp(np.arange(n_steps + 1), phase, t_edges)
+    c = np.concatenate([[0.0], np.cumsum(z.astype(np.complex128))])
+    pos = (time_s - t_edges[0]) * fs
+    cum = np.interp(pos, np.arange(n + 1), c.real) + 1j * np.interp(pos, np.arange(n + 1),
+                                                                   c.imag)
+    return _Lattice(time_s=time_s, cumsum=cum, fs=fs, k=k)
+
+
+def _log_i0(x: np.ndarray) -> np.ndarray:
+    from scipy.special import i0e
+
+    return np.log(i0e(x)) + x
+
+
+def mark_llr(y: np.ndarray, n_samples: np.ndarray, amplitude: np.ndarray,
+             density: np.ndarray, rate_hz: float) -> np.ndarray:
+    """Log-likelihood ratio of a mark against noise alone, from the baseband sum over it.
+
+    Parameters
+    ----------
+    y : ndarray, complex
+        Sum of the baseband over the interval.
+    n_samples : ndarray
+        Samples in the interval (may be fractional).
+    amplitude : ndarray
+        Carrier amplitude in the baseband, full scale.
+    density : ndarray
+        Two-sided noise density, full scale² per Hz.
+    rate_hz : float
+        Baseband rate, Hz.
+
+    Returns
+    -------
+    ndarray
+        ``ln I0(2 A |y| / (fs N0)) - L A² / (fs N0)`` (module notes, [3]_).
+
+    Examples
+    --------
+    >>> round(float(mark_llr(np.array([0j]), np.array([10.0]), np.array([1.0]),
+    ...                      np.array([0.1]), 100.0)[0]), 6)  # nothing there: -L A²/(fs N0)
+    -1.0
+    """
+    fn0 = rate_hz * np.maximum(density, 1e-300)
+    return _log_i0(2.0 * amplitude * np.abs(y) / fn0) - n_samples * amplitude**2 / fn0
+
+
+@dataclass(frozen=True)
+class _Track:
+    """Carrier amplitude and noise density as functions of time."""
+
+    time_s: np.ndarray
+    amplitude: np.ndarray
+    density: np.ndarray
+
+
+def _sums(baseband: Baseband, start_s: np.ndarray, end_s: np.ndarray
+          ) -> tuple[np.ndarray, np.ndarray]:
+    fs = baseband.rate_hz
+    z = baseband.samples
+    c = np.concatenate([[0.0], np.cumsum(z.astype(np.complex128))])
+    grid = np.arange(z.size + 1)
+    p0 = (start_s - baseband.start_s) * fs + 0.5
+    p1 = (end_s - baseband.start_s) * fs + 0.5
+    c0 = np.interp(p0, grid, c.real) + 1j * np.interp(p0, grid, c.imag)
+    c1 = np.interp(p1, grid, c.real) + 1j * np.interp(p1, grid, c.imag)
+    return c1 - c0, np.maximum(p1 - p0, 1e-9)
+
+
+def track_amplitude(baseband: Baseband, start_s: np.ndarray, end_s: np.ndarray,
+                    time_s: np.ndarray, density: np.ndarray, *,
+                    kernel_s: float = AMPLITUDE_KERNEL_S) -> np.ndarray:
+    """Carrier amplitude in the baseband at ``time_s``, from marks believed to be keyed.
+
+    Each mark's ``|y|² - L fs N0`` is an unbiased estimate of ``L² A²`` (module notes);
+    around each time they are pooled with Gaussian weights of half-width ``kernel_s``.
+    """
+    if start_s.size == 0:
+        return np.zeros(time_s.size)
+    y, n = _sums(baseband, start_s, end_s)
+    mid = 0.5 * (start_s + end_s)
+    d_mid = np.interp(mid, time_s, density)
+    num = np.abs(y) ** 2 - n * baseband.rate_hz * d_mid
+    den = n * n
+    # evaluate on a coarse grid of times, then interpolate: the amplitude moves slowly
+    grid = np.arange(time_s[0], time_s[-1] + kernel_s / 4, kernel_s / 4)
+    w = np.exp(-0.5 * ((grid[:, None] - mid[None, :]) / kernel_s) ** 2)
+    a2 = (w @ num) / np.maximum(w @ den, 1e-300)
+    strong = np.sqrt(np.maximum(a2, 0.0))
+    # far from every mark the weights vanish: hold the global estimate there
+    whole = math.sqrt(max(float(num.sum() / den.sum()), 0.0))
+    support = w.sum(axis=1)
+    strong = np.where(support > 0.05, strong, whole)
+    return np.interp(time_s, grid, strong)
+
+
+# ---------------------------------------------------------------------------------------
+# Viterbi over the lattice
+
+
+@dataclass(frozen=True)
+class Segment:
+    """One decided mark or gap, in lattice steps."""
+
+    start: int
+    end: int
+    is_mark: bool
+    kind: int  # marks: 0 dot, 1 dash; gaps: ELEMENT, CHARACTER or WORD
+    node: int  # marks: the tree node the mark reached
+
+
+def _mark_llrs(lat: _Lattice, track: _Track, d: np.ndarray) -> np.ndarray:
+    """Ratio of a mark of each duration ``d`` ending at each step: shape (T + 1, len(d)).
+
+    -inf where the mark would begin before the lattice.
+    """
+    n_t = lat.time_s.size
+    t = np.arange(n_t)[:, None]
+    a = t - d[None, :]
+    ok = a >= 0
+    a = np.maximum(a, 0)
+    y = lat.cumsum[t] - lat.cumsum[a]
+    n = (lat.time_s[t] - lat.time_s[a]) * lat.fs
+    mid = 0.5 * (lat.time_s[t] + lat.time_s[a])
+    amp = np.interp(mid, track.time_s, track.amplitude)
+    den = np.interp(mid, track.time_s, track.density)
+    return np.where(ok, mark_llr(y, n, amp, den, lat.fs), -np.inf)
+
+
+def _span(*ranges: np.ndarray) -> np.ndarray:
+    return np.arange(min(int(r[0]) for r in ranges), max(int(r[-1]) for r in ranges) + 1)
+
+
+def _law_on(d: np.ndarray, law: Law, k: int, extra: float = 0.0) -> np.ndarray:
+    """Log-probability of the durations ``d`` under a law, -inf outside its searched range."""
+    own = law.steps(k)
+    return np.where((d >= own[0]) & (d <= own[-1]), law.log_p(d, k) + extra, -np.inf)
+
+
+def viterbi(lat: _Lattice, track: _Track, durations: Durations) -> tuple[list[Segment], float]:
+    """Most likely sequence of segments over the lattice, and its score (module notes).
+
+    The score is the log-likelihood ratio of the sequence against noise alone plus the
+    log-probabilities of its durations and characters; 0 for no mark at all.
+    """
+    tree = _tree()
+    k = lat.k
+    n_t = lat.time_s.size
+    laws = durations
+    # marks: every duration a dot or a dash may have, each class's law on it
+    d_mark = _span(laws.dot.steps(k), laws.dash.steps(k))
+    lp_mark = np.stack([_law_on(d_mark, laws.dot, k), _law_on(d_mark, laws.dash, k)], -1)
+    s_mark = (_mark_llrs(lat, track, d_mark)[:, :, None] + lp_mark[None]).astype(np.float32)
+    d_el, d_ch, d_wd = laws.element.steps(k), laws.character.steps(k), laws.word.steps(k)
+    lp_el = laws.element.log_p(d_el, k).astype(np.float32)[None, :, None]
+    lp_ch = (laws.character.log_p(d_ch, k) + math.log(1 - laws.p_word)).astype(np.float32)
+    lp_wd = (laws.word.log_p(d_wd, k) + math.log(laws.p_word)).astype(np.float32)
+    p_min = int(d_wd[-1]) + 1  # a pause is longer than any word gap
+    block = int(min(d_mark[0], d_el[0], d_ch[0], d_wd[0]))
+    pad = int(max(d_mark[-1], d_el[-1], d_ch[-1], p_min))
+    n_nodes = len(tree.prefix)
+    inner = np.flatnonzero(tree.internal & (np.arange(n_nodes) > 0))  # element gap states
+    n_in = inner.size
+    full = np.flatnonzero(tree.complete)
+    prior = tree.log_prior[full].astype(np.float32)
+    mark_nodes = np.arange(1, n_nodes)
+    n_dot = int(np.count_nonzero(~tree.dash[mark_nodes]))
+    assert not tree.dash[1 : 1 + n_dot].any() and tree.dash[1 + n_dot :].all()
+    # the gap state each mark node leaves from: 0 the root, 1 + i the inner node i
+    gap_pos = np.full(n_nodes, -1)
+    gap_pos[0] = 0
+    gap_pos[inner] = 1 + np.arange(n_in)
+    par = gap_pos[tree.parent[mark_nodes]]
+    rows = pad + n_t
+    neg = np.float32(-np.inf)
+    m_inner = np.full((rows, n_in), neg, dtype=np.float32)  # a mark reached an inner node
+    g_par = np.full((rows, n_nodes - 1), neg, dtype=np.float32)  # a gap at each node's parent
+    c_score = np.full(rows, neg, dtype=np.float32)  # a character was completed
+    c_best = np.full(rows, neg, dtype=np.float32)  # running maximum of c_score, for pauses
+    c_best_at = np.zeros(rows, dtype=np.int64)
+    m_arg = np.zeros((rows, n_nodes - 1), dtype=np.int16)
+    g_arg = np.zeros((rows, n_in), dtype=np.int16)
+    root_from = np.zeros(rows, dtype=np.int8)  # 0 start, 1 character gap, 2 word gap, 3 pause
+    root_len = np.zeros(rows, dtype=np.int64)  # steps of that gap
+    c_arg = np.zeros(rows, dtype=np.int16)
+    lane = np.arange(block)
+    off_el = lane[:, None] - d_el[None, :]
+    off_ch = lane[:, None] - d_ch[None, :]
+    off_wd = lane[:, None] - d_wd[None, :]
+    off_mark = lane[:, None] - d_mark[None, :]
+    g_all = np.empty((block, n_in + 1), dtype=np.float32)
+    options = np.empty((4, block), dtype=np.float32)
+    options[0] = 0.0
+    inner_col = inner - 1
+    full_col = full - 1
+    for t0 in range(pad, rows, block):
+        b = min(block, rows - t0)
+        r = slice(t0, t0 + b)
+        lanes = lane[:b]
+        # gaps: element gaps keep the node; the root takes character and word gaps, pauses
+        cand = np.take(m_inner, t0 + off_el[:b], axis=0) + lp_el
+        g_arg[r] = cand.argmax(axis=1)
+        g_all[:b, 1:] = cand.max(axis=1)
+        ch = np.take(c_score, t0 + off_ch[:b]) + lp_ch
+        wd = np.take(c_score, t0 + off_wd[:b]) + lp_wd
+        j_ch, j_wd = ch.argmax(axis=1), wd.argmax(axis=1)
+        options[1, :b] = ch[lanes, j_ch]
+        options[2, :b] = wd[lanes, j_wd]
+        options[3, :b] = c_best[t0 - p_min : t0 - p_min + b] + PAUSE_LOG_P
+        how = options[:, :b].argmax(axis=0)
+        root_from[r] = how
+        root_len[r] = np.where(how == 1, d_ch[j_ch], d_wd[j_wd])
+        g_all[:b, 0] = options[how, lanes]
+        g_par[r] = g_all[:b, par]
+        # marks: one step down the tree from the node the gap before them left
+        cand = np.take(g_par, t0 + off_mark[:b], axis=0)
+        s = s_mark[t0 - pad : t0 - pad + b]
+        cand[:, :, :n_dot] += s[:, :, 0:1]
+        cand[:, :, n_dot:] += s[:, :, 1:2]
+        m_arg[r] = cand.argmax(axis=1)
+        m = cand.max(axis=1)
+        m_inner[r] = m[:, inner_col]
+        done = m[:, full_col] + prior
+        j = done.argmax(axis=1)
+        c = done[lanes, j]
+        c_score[r] = c
+        c_arg[r] = full[j]
+        run = np.maximum.accumulate(np.concatenate([c_best[t0 - 1 : t0], c]))[1:]
+        c_best[r] = run
+        c_best_at[r] = np.maximum.accumulate(np.where(c >= run, t0 + lanes, c_best_at[t0 - 1]))
+    end = int(np.argmax(c_score))
+    score = float(c_score[end])
+    if not np.isfinite(score) or score <= 0.0:
+        return [], 0.0
+    # back-track
+    segments: list[Segment] = []
+    state, t, node = "c", end, 0
+    while True:
+        if state == "c":
+            node, state = int(c_arg[t]), "m"
+        elif state == "m":
+            d = int(d_mark[m_arg[t, node - 1]])
+            segments.append(Segment(t - d - pad, t - pad, True, int(tree.dash[node]), node))
+            t, node, state = t - d, int(tree.parent[node]), "g"
+        elif node:  # element gap
+            d = int(d_el[g_arg[t, gap_pos[node] - 1]])
+            segments.append(Segment(t - d - pad, t - pad, False, ELEMENT, node))
+            t, state = t - d, "m"
+        else:
+            how = int(root_from[t])
+            if how == 0:
+                break
+            before = int(c_best_at[t - p_min]) if how == 3 else t - int(root_len[t])
+            segments.append(Segment(before - pad, t - pad, False,
+                                    CHARACTER if how == 1 else WORD, 0))
+            t, state = before, "c"
+    segments.reverse()
+    return segments, score
+
+
+# ---------------------------------------------------------------------------------------
+# The decoder
+
+
+def _robust_unit_track(time_s: np.ndarray, unit_s: np.ndarray, dot_s: float
+                       ) -> np.ndarray:
+    """A unit track kept within 40 % of the recording's unit and smoothed."""
+    u = np.clip(unit_s, dot_s / 1.4, dot_s * 1.4)
+    if u.size < 5:
+        return np.full(u.size, float(np.median(u)) if u.size else dot_s)
+    half = 7
+    pad = np.pad(u, half, mode="edge")
+    return np.median(np.lib.stride_tricks.sliding_window_view(pad, 2 * half + 1), axis=1)
+
+
+def _classes_in_units(start_s, end_s, is_dash, gap_class, time_s, unit_s):
+    local_m = np.interp(0.5 * (start_s + end_s), time_s, unit_s)
+    mark_units = (end_s - start_s) / local_m
+    if start_s.size > 1:
+        local_g = np.interp(0.5 * (end_s[:-1] + start_s[1:]), time_s, unit_s)
+        gap_units = (start_s[1:] - end_s[:-1]) / local_g
+    else:
+        gap_units = np.empty(0)
+    return mark_units, gap_units
+
+
+def _speed_from_decision(start_s, end_s, is_dash, gap_class, time_s, unit_s):
+    """Unit track re-measured on a decision.
+
+    A dot and the element gap after it span 2 units whatever the weighting (as in
+    :mod:`okdecode.symbols`): they set the scale. A dash and its gap span ``r + 1``
+    units for a dash/dot ratio ``r`` the operator keeps, so they follow changes of
+    speed relative to their own median.
+    """
+    pair = gap_class == ELEMENT
+    dot_pair = pair & ~is_dash[:-1]
+    if dot_pair.sum() < 3:
+        return time_s, unit_s
+    span = start_s[1:][pair] - start_s[:-1][pair]
+    at = start_s[:-1][pair]
+    dash = is_dash[:-1][pair]
+    local = np.interp(at, time_s, unit_s)
+    units = span / local
+    units[~dash] /= 2.0
+    if dash.sum() >= 3:
+        # the dashes' spans in units of the dot pairs' scale
+        units[dash] *= np.median(units[~dash]) / np.median(units[dash])
+    else:
+        units[dash] = np.median(units[~dash])
+    half = 7
+    pad = np.pad(units, half, mode="edge")
+    smooth = np.median(np.lib.stride_tricks.sliding_window_view(pad, 2 * half + 1), axis=1)
+    return at, local * smooth
+
+
+def _confidences(segments: list[Segment], mark_llrs: np.ndarray, durations: Durations,
+                 k: int) -> tuple[np.ndarray, np.ndarray]:
+    marks = [s for s in segments if s.is_mark]
+    gaps = [s for s in segments if not s.is_mark]
+    present = 1.0 / (1.0 + np.exp(-np.clip(mark_llrs, -50, 50)))
+    m_conf = np.empty(len(marks))
+    for i, s in enumerate(marks):
+        d = np.array([s.end - s.start])
+        lp = np.array([durations.dot.log_p(d, k)[0], durations.dash.log_p(d, k)[0]])
+        p = np.exp(lp - lp.max())
+        m_conf[i] = present[i] * p[s.kind] / p.sum()
+    g_conf = np.empty(len(gaps))
+    pw = durations.p_word
+    for i, s in enumerate(gaps):
+        d = np.array([s.end - s.start])
+        # an element gap is about as likely as a character boundary (common practice)
+        lp = np.array([durations.element.log_p(d, k)[0] + math.log(0.5),
+                       durations.character.log_p(d, k)[0] + math.log(0.5 * (1 - pw)),
+                       durations.word.log_p(d, k)[0] + math.log(0.5 * pw)])
+        if d[0] > durations.word.steps(k)[-1]:
+            lp[2] = max(lp[2], 0.0)  # a pause is a word break beyond doubt
+        p = np.exp(lp - lp.max())
+        which = {ELEMENT: 0, CHARACTER: 1, WORD: 2}[s.kind]
+        g_conf[i] = p[which] / p.sum()
+    return m_conf, g_conf
+
+
+#: Least significance of the keying line for :func:`line_unit_s`'s speed to be used.
+LINE_MIN_Z = 8.0
+#: Speeds the threshold path may report for its speed to be tried, WPM.
+PLAUSIBLE_WPM = (4.0, 60.0)
+#: Share of key-down time in typical text (the word PARIS: 22 of its 50 units).
+DUTY = 0.44
+
+
+def line_unit_s(baseband: Baseband, *, min_wpm: float = 5.0, max_wpm: float = 50.0
+                ) -> tuple[float | None, float]:
+    """The dot length from the keying line in the spectrum of the rising edges, s.
+
+    Parameters
+    ----------
+    baseband : Baseband
+    min_wpm, max_wpm : float
+        Speeds searched, WPM.
+
+    Returns
+    -------
+    (float or None, float)
+        The dot length, s, and the line's significance (its power over the median
+        power of the band searched; about 1 for noise alone).
+
+    Notes
+    -----
+    In code keyed to ITU-R M.1677-1 timing every mark begins an even number of units
+    after the one before it (a dot and its gap are 2 units, a dash and its gap 4, and
+    the 3 and 7 unit gaps follow a 1 or 3 unit mark), while marks end an odd number of
+    units later. The rising edges of the power envelope therefore repeat with a period
+    of two dots, and their spectrum holds lines at odd multiples of ``1 / (2 dot)``.
+    The search maximises the power at the first and third of them, which no multiple
+    or fraction of the true period does. Over a whole message the line is far narrower
+    and stronger than any duration histogram, so it holds the speed well below the
+    level where the threshold path stops finding the marks. Jitter and speed changes
+    smear it; its significance then falls, and the threshold path's speed is used.
+    """
+    z = baseband.samples
+    fs = baseband.rate_hz
+    step = max(1, int(fs // 200))  # the edges' power is wanted up to about 70 Hz
+    n = max(1, int(round(0.005 * fs)))
+    p = np.abs(moving_average(z, n)) ** 2
+    if step > 1:
+        m = p.size // step
+        p = p[: m * step].reshape(m, step).mean(axis=1)
+    rate = fs / step
+    if p.size < 64:
+        return None, 0.0
+    rise = np.maximum(np.diff(p), 0.0)
+    rise -= rise.mean()
+    n_fft = 1 << int(math.ceil(math.log2(2 * rise.size)))
+    power = np.abs(np.fft.rfft(rise, n_fft)) ** 2
+    f = np.fft.rfftfreq(n_fft, 1.0 / rate)
+    band = (f >= 1.0 / (2 * 1.2 / min_wpm)) & (f <= 1.0 / (2 * 1.2 / max_wpm))
+    if not band.any() or 3 * f[band][-1] >= rate / 2:
+        return None, 0.0
+    score = power[band] + np.interp(3 * f[band], f, power)
+    i = int(np.argmax(score))
+    f0 = float(f[band][i])
+    if not 1.03 * f[band][0] < f0 < f[band][-1] / 1.03:  # at an edge: no line inside
+        return None, 0.0
+    floor = 2.0 * float(np.median(power[band]))
+    return 1.0 / (2.0 * f0), float(score[i] / max(floor, 1e-300))
+
+
+@dataclass(frozen=True)
+class _Decision:
+    start_s: np.ndarray
+    end_s: np.ndarray
+    is_dash: np.ndarray
+    gap_class: np.ndarray
+
+
+@dataclass(frozen=True)
+class _Pass:
+    segments: list[Segment]
+    score: float
+    lattice: _Lattice
+    durations: Durations
+    track: _Track
+    decision: _Decision
+    unit_track: tuple[np.ndarray, np.ndarray]
+
+
+def _power_amplitude(baseband: Baseband, t_s: np.ndarray, density: np.ndarray,
+                     unit_s: float) -> np.ndarray:
+    """Carrier amplitude from the baseband's power alone.
+
+    After a moving average of ``n`` samples (a quarter dot), noise has the power
+    ``fs N0 / n`` and a keyed carrier ``A²`` for the share ``DUTY`` of the time, so a
+    long mean of the power gives ``A² = (P - fs N0 / n) / DUTY``.
+    """
+    fs = baseband.rate_hz
+    n = max(8, int(round(0.25 * unit_s * fs)))
+    y = moving_average(baseband.samples, n)
+    p = y.real**2 + y.imag**2
+    m = max(1, int(round(4 * AMPLITUDE_KERNEL_S * fs)))
+    excess = moving_average(p, m).real - fs * density / n
+    return np.sqrt(np.maximum(excess, 0.0) / DUTY)
+
+
+def _pass(baseband: Baseband, t_s: np.ndarray, density: np.ndarray,
+          unit_track: tuple[np.ndarray, np.ndarray], decision: _Decision | None, k: int
+          ) -> _Pass | None:
+    """One Viterbi pass with speed, amplitude and durations measured on a decision
+    (nominal durations and the power's amplitude without one)."""
+    unit_time_s, unit_s = unit_track
+    lat = _lattice(baseband, unit_time_s, unit_s, k)
+    if decision is None:
+        empty = np.empty(0)
+        durations = measure_durations(np.zeros(0, bool), np.zeros(0, int), empty, empty)
+        amp = _power_amplitude(baseband, t_s, density, float(np.median(unit_s)))
+    else:
+        mark_units, gap_units = _classes_in_units(decision.start_s, decision.end_s,
+                                                  decision.is_dash, decision.gap_class,
+                                                  unit_time_s, unit_s)
+        durations = measure_durations(decision.is_dash, decision.gap_class, mark_units,
+                                      gap_units)
+        amp = track_amplitude(baseband, decision.start_s, decision.end_s, t_s, density)
+    track = _Track(time_s=t_s, amplitude=amp, density=density)
+    segments, score = viterbi(lat, track, durations)
+    if not segments:
+        return None
+    m = [s for s in segments if s.is_mark]
+    g = [s for s in segments if not s.is_mark]
+    start_s = lat.time_s[[s.start for s in m]]
+    end_s = lat.time_s[[s.end for s in m]]
+    found = _Decision(start_s, end_s, np.array([s.kind == 1 for s in m]),
+                      np.array([s.kind for s in g], dtype=int))
+    new_track = _speed_from_decision(found.start_s, found.end_s, found.is_dash,
+                                     found.gap_class, unit_time_s, unit_s)
+    return _Pass(segments, score, lat, durations, track, found, new_track)
+
+
+def _same(a: _Decision, b: _Decision, *, step_s: float) -> bool:
+    """Whether two decisions have the same classes and edges within two steps."""
+    return (a.start_s.size == b.start_s.size and bool(np.all(a.is_dash == b.is_dash))
+            and bool(np.all(a.gap_class == b.gap_class))
+            and bool(np.all(np.abs(a.start_s - b.start_s) < 2 * step_s))
+            and bool(np.all(np.abs(a.end_s - b.end_s) < 2 * step_s)))
+
+
+def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbols, *,
+           source: str) -> tuple[Marks, Symbols]:
+    """Decide marks and classes again on the whole sequence (module notes).
+
+    Parameters
+    ----------
+    baseband : Baseband
+        The fine-tuned baseband, carrier at 0 Hz.
+    envelope : Envelope
+        The threshold path's matched envelope (its noise measurement is used).
+    marks : Marks
+        The threshold path's marks: the start for the amplitude track; their ``levels``
+        are kept.
+    symbols : Symbols
+        The threshold path's classes: the start for the speed and the duration laws.
+    source : str
+        Named in the results.
+
+    Returns
+    -------
+    (Marks, Symbols)
+        The same kinds of results as the threshold path's, so :func:`okdecode.text.decode`
+        reads them as it reads those; with the inputs unchanged when the threshold path
+        found no speed.
+    """
+    if symbols.dot_s is None or symbols.n_marks < 2 or baseband.samples.size < 16:
+        return marks, symbols
+    k = STEPS_PER_UNIT
+    fs = baseband.rate_hz
+    t_s = baseband.start_s + np.arange(baseband.samples.size) / fs
+    if envelope.noise_sigma is not None and envelope.noise_sigma.size:
+        # the envelope's Rayleigh sigma is that of noise of density N0 in its bandwidth B:
+        # sigma² = N0 B / 2 (see okdecode.baseband.envelope)
+        density = np.interp(t_s, envelope.time_s,
+                            2.0 * envelope.noise_sigma**2 / envelope.noise_bandwidth_hz)
+    else:
+        density = noise_density(baseband)
+    dot_s = float(symbols.dot_s)
+    thr_track = (symbols.start_s, _robust_unit_track(symbols.start_s, symbols.local_dot_s,
+                                                     dot_s))
+    thr_decision = _Decision(symbols.start_s, symbols.end_s, symbols.is_dash,
+                             symbols.gap_class)
+    line_s, line_z = line_unit_s(baseband)
+    tries: list[tuple[tuple[np.ndarray, np.ndarray], _Decision | None]] = []
+    ratio = line_s / dot_s if line_s else 1.0
+    # a threshold path that has lost the signal reads noise as code far too fast or slow
+    plausible = PLAUSIBLE_WPM[0] <= 1.2 / dot_s <= PLAUSIBLE_WPM[1]
+    if line_s is None or line_z < LINE_MIN_Z:
+        tries.append((thr_track, thr_decision))
+    elif abs(math.log(ratio)) < math.log(1.08):
+        # the same speed: the line's is the sharper measure of it
+        scale = line_s / float(np.median(thr_track[1]))
+        tries.append(((thr_track[0], thr_track[1] * scale), thr_decision))
+    elif plausible:
+        # the threshold path's speed and the keying line disagree: the likelier wins
+        tries += [(thr_track, thr_decision), ((np.array([0.0]), np.array([line_s])), None)]
+    else:
+        tries.append(((np.array([0.0]), np.array([line_s])), None))
+    best, start = None, None
+    for unit_track, decision in tries:
+        result = _pass(baseband, t_s, density, unit_track, decision, k)
+        if result is not None and (best is None or result.score > best.score):
+            best, start = result, decision
+    if best is None:
+        return marks, symbols
+    if start is None or not _same(start, best.decision, step_s=dot_s / k):
+        # measured on a decision that has changed: measure again on the new one
+        unit_track = best.unit_track
+        if line_s is not None and line_z >= LINE_MIN_Z and abs(
+                math.log(line_s / float(np.median(unit_track[1])))) < math.log(1.08):
+            unit_track = (unit_track[0], unit_track[1] * line_s / np.median(unit_track[1]))
+        again = _pass(baseband, t_s, density, unit_track, best.decision, k)
+        if again is not None:
+            best = again
+    segments, durations, track = best.segments, best.durations, best.track
+    start_s, end_s = best.decision.start_s, best.decision.end_s
+    is_dash, gap_class = best.decision.is_dash, best.decision.gap_class
+    unit_time_s, unit_s = best.unit_track
+    y, n = _sums(baseband, start_s, end_s)
+    mid = 0.5 * (start_s + end_s)
+    llr = mark_llr(y, n, np.interp(mid, t_s, track.amplitude), np.interp(mid, t_s, density),
+                   fs)
+    m_conf, g_conf = _confidences(segments, llr, durations, k)
+    level, snr_db = _levels(envelope, marks, start_s, end_s)
+    new_marks = Marks(start_s=start_s, end_s=end_s, level=level, peak_snr_db=snr_db,
+                      levels=marks.levels, source=source)
+    local = np.interp(start_s, unit_time_s, unit_s)
+    unit = float(np.median(local))
+    mark_units, gap_units = _classes_in_units(start_s, end_s, is_dash, gap_class,
+                                              unit_time_s, unit_s)
+    dots, dashes = mark_units[~is_dash], mark_units[is_dash]
+    ratio = float(np.median(dashes) / np.median(dots)) if dots.size and dashes.size else None
+    char_gaps = (start_s[1:] - end_s[:-1])[gap_class == CHARACTER]
+    farns = bool(char_gaps.size and np.median(gap_units[gap_class == CHARACTER]) > 4.5)
+    f_wpm = farnsworth_wpm(1.2 / unit, float(np.median(char_gaps))) if farns else None
+    new_symbols = Symbols(start_s=start_s, end_s=end_s, is_dash=is_dash, gap_class=gap_class,
+                          mark_confidence=m_conf, gap_confidence=g_conf, local_dot_s=local,
+                          dot_s=unit, dash_dot_ratio=ratio, farnsworth=farns,
+                          farnsworth_wpm=f_wpm, source=source)
+    return new_marks, new_symbols
+
+
+def _levels(envelope: Envelope, marks: Marks, start_s: np.ndarray, end_s: np.ndarray
+            ) -> tuple[np.ndarray, np.ndarray]:
+    """Mean envelope magnitude over each mark and its ratio to the noise floor, dB."""
+    x = envelope.magnitude
+    t = envelope.time_s
+    i0 = np.clip(np.searchsorted(t, start_s), 0, x.size - 1)
+    i1 = np.maximum(np.clip(np.searchsorted(t, end_s), 0, x.size), i0 + 1)
+    c = np.concatenate([[0.0], np.cumsum(x)])
+    level = (c[i1] - c[i0]) / (i1 - i0)
+    noise = np.interp(0.5 * (start_s + end_s), marks.levels.time_s, marks.levels.noise)
+    snr_db = 20 * np.log10(np.maximum(level, 1e-30) / np.maximum(noise, 1e-30))
+    return level, snr_db
+
+
+def decode_reception_text(reception: Reception) -> str:
+    """Text of a threshold-path reception decoded again by :func:`refine`.
+
+    Returns the reception's own text when it holds no baseband or marks.
+    """
+    r = reception
+    if r.baseband is None or r.envelope is None or r.marks is None or r.symbols is None:
+        return r.text
+    found, syms = refine(r.baseband, r.envelope, r.marks, r.symbols, source=r.file)
+    return decode(syms).text
