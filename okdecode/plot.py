@@ -96,6 +96,15 @@ def plot_reception(result: Reception) -> Figure:
     Notes
     -----
     See the module notes for the panels and the bounds on drawing long recordings.
+
+    Examples
+    --------
+    >>> from okdecode.receiver import decode_array
+    >>> from okdecode.synth import synth
+    >>> rec = synth("XQ7ZB", rate_hz=8000.0, cn0_dbhz=40.0, seed=1)
+    >>> fig = plot_reception(decode_array(rec.samples, rec.rate_hz, source="demo.wav"))
+    >>> [t.get_text() for ax in fig.axes for t in ax.texts if t.get_gid() == "character"]
+    ['X', 'Q', '7', 'Z', 'B']
     """
     from matplotlib.figure import Figure
 
@@ -472,12 +481,21 @@ def _draw_envelope(ax: Axes, result: Reception, t0: float, t1: float, *, charact
             k0 = max(int(np.searchsorted(lv.time_s, t0)) - 1, 0)
             k1 = int(np.searchsorted(lv.time_s, t1)) + 1
             sl = slice(k0, k1)
-            ax.plot(lv.time_s[sl], lv.noise[sl], color=COLOURS["green"], ls="--", lw=1.2,
+            # the decision held the first and last window's levels out to the ends
+            # (linear interpolation between window centres, constant beyond them)
+            t_end = env.start_s + (x.size - 1) / env.rate_hz
+            tl = np.concatenate([[min(env.start_s, lv.time_s[0])], lv.time_s[sl],
+                                 [max(t_end, lv.time_s[-1])]])
+
+            def held(v: np.ndarray) -> np.ndarray:
+                return np.concatenate([v[:1], v[sl], v[-1:]])
+
+            ax.plot(tl, held(lv.noise), color=COLOURS["green"], ls="--", lw=1.2,
                     label="noise floor")
-            ax.plot(lv.time_s[sl], lv.mark[sl], color=COLOURS["orange"], ls=":", lw=1.6,
+            ax.plot(tl, held(lv.mark), color=COLOURS["orange"], ls=":", lw=1.6,
                     label="mark level")
-            ax.plot(lv.time_s[sl], lv.threshold[sl], color=COLOURS["black"], ls="-.",
-                    lw=1.0, label="threshold")
+            ax.plot(tl, held(lv.threshold), color=COLOURS["black"], ls="-.", lw=1.0,
+                    label="threshold")
             finite = lv.mark[sl][np.isfinite(lv.mark[sl])]
             if finite.size:
                 top = max(top, float(finite.max()))
@@ -585,17 +603,24 @@ def _draw_histograms(ax_m: Axes, ax_s: Axes, result: Reception) -> None:
         pause = gaps_u > PAUSE_UNITS
         shown = gaps_u[~pause]
         cls = syms.gap_class[~pause]
-        data = [np.clip(shown[cls == k], 0, 10) for k in (ELEMENT, CHARACTER, WORD)]
-        ax_s.hist(data, bins=np.linspace(0.0, 10.0, 101), stacked=True,
+        # Farnsworth spacing stretches the gaps past 7 dots: the axis follows them
+        right = 10.0 if shown.size == 0 else float(
+            np.clip(math.ceil(1.1 * shown.max()), 10.0, PAUSE_UNITS))
+        data = [np.clip(shown[cls == k], 0, right) for k in (ELEMENT, CHARACTER, WORD)]
+        ax_s.hist(data, bins=np.linspace(0.0, right, int(10 * right) + 1), stacked=True,
                   color=[COLOURS["blue"], COLOURS["orange"], COLOURS["green"]],
                   label=["element gaps", "character gaps", "word gaps"])
         if pause.any():
-            ax_s.text(0.97, 0.55, f"{int(pause.sum())} pauses over {PAUSE_UNITS:g} dots\n"
-                      "not shown", transform=ax_s.transAxes, ha="right", va="top", fontsize=8)
+            ax_s.text(0.97, 0.55, f"{int(pause.sum())} longer than {PAUSE_UNITS:g} dots\n"
+                      "(pauses) not shown", transform=ax_s.transAxes, ha="right", va="top",
+                      fontsize=8)
+        if result.farnsworth_wpm is not None and timing.char_gap_ms is not None:
+            ax_s.axvline(timing.char_gap_ms / unit_ms, color=COLOURS["vermillion"], ls="--",
+                         lw=1.0, label=f"Farnsworth, {result.farnsworth_wpm:.1f} WPM overall")
         ax_s.legend(fontsize=7, loc="upper right")
+        ax_s.set_xticks([0, 1, 3, 5, 7] + list(range(10, int(right) + 1, 5)))
     for u in (1, 3, 7):  # ITU-R M.1677-1 (2009): gaps of 1, 3 and 7 dots
         ax_s.axvline(u, color=COLOURS["black"], ls=":", lw=1.0)
-    ax_s.set_xticks([0, 1, 3, 5, 7, 10])
     ax_s.set_xlabel(f"length, dots (1 dot = {unit_ms:.1f} ms)")
     ax_s.set_ylabel("spaces")
 
