@@ -372,7 +372,8 @@ def write_annotations(recording: Capture | str | PathLike, out_path: str | PathL
     -----
     Each annotation spans the character from the start of its first mark to the end of
     its last: ``core:sample_start = core:offset + round(start_s * rate_hz)`` and
-    ``core:sample_count = round(end_s * rate_hz) - round(start_s * rate_hz)`` (at least 1),
+    ``core:sample_count = round(end_s * rate_hz) - round(start_s * rate_hz)`` (at least 1,
+    and within the recording),
     with ``core:label`` the character (procedural signals as ``<AR>``), and
     ``core:generator`` "okdecode". The recording's own annotations are kept; all are
     sorted by ``core:sample_start``, as the standard asks [1]_.
@@ -419,8 +420,8 @@ def write_annotations(recording: Capture | str | PathLike, out_path: str | PathL
     for c in characters:
         char, start_s, end_s = (c["char"], c["start_s"], c["end_s"]) if isinstance(c, dict) \
             else (c.char, c.start_s, c.end_s)
-        start = max(int(round(float(start_s) * rate)), 0)
-        stop = max(int(round(float(end_s) * rate)), start + 1)
+        start = min(max(int(round(float(start_s) * rate)), 0), cap.n_samples - 1)
+        stop = min(max(int(round(float(end_s) * rate)), start + 1), cap.n_samples)
         note = {"core:sample_start": first + start, "core:sample_count": stop - start,
                 "core:label": str(char), "core:generator": "okdecode"}
         if edges is not None:
