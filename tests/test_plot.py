@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import io
+import json
 import tracemalloc
 
 import numpy as np
@@ -315,3 +316,25 @@ def test_thirty_minutes_overview_and_zooms_in_bounded_memory(beacon_30min, tmp_p
         assert any(s.startswith(want) for s in shown), (want, shown)
     labels = [t.get_text() for t in overview.texts if t.get_gid() == "zoom-label"]
     assert labels == [str(k + 1) for k in range(len(zooms))]
+
+
+def test_cli_plot_option_writes_one_figure_per_file(tmp_path):
+    from click.testing import CliRunner
+
+    from okdecode.cli import main
+
+    paths = []
+    for k, msg in enumerate(("XQ7ZB", "TEST XQ7ZB")):
+        paths.append(tmp_path / f"site{k}.flac")
+        synth_file(paths[-1], msg, rate_hz=8000.0, cn0_dbhz=40.0, wpm=25.0, seed=12 + k)
+    out = tmp_path / "fig.png"
+    run = CliRunner().invoke(main, ["decode", *map(str, paths), "--plot", str(out), "--json"])
+    assert run.exit_code == 0, run.output
+    texts = [json.loads(line)["text"] for line in run.output.splitlines()]
+    assert texts == ["XQ7ZB", "TEST XQ7ZB"]
+    for p in paths:
+        written = tmp_path / f"fig-{p.stem}.png"
+        assert written.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (RFC 2083)
+    bad = CliRunner().invoke(main, ["decode", str(paths[0]), "--plot", str(tmp_path / "f.jpg")])
+    assert bad.exit_code == 2
+    assert "f.jpg: figure format '.jpg'" in bad.output
