@@ -63,6 +63,8 @@ COLOURS = {
 MAX_COLUMNS = 1500
 #: Most characters written in one zoom panel.
 MAX_ZOOM_CHARS = 48
+#: Transmissions shorter than this (stray characters in pauses) get zooms last.
+MIN_ZOOM_CHARS = 5
 #: Most zoom panels in one figure.
 MAX_ZOOMS = 6
 #: Longest decoded text in the title, characters.
@@ -236,17 +238,36 @@ def _zoom_chunks(result: Reception, dot_s: float) -> tuple[list[tuple[int, int]]
     span_s = chars[-1].end_s - chars[0].start_s
     if len(chars) <= MAX_ZOOM_CHARS and span_s >= 0.25 * result.duration_s:
         return [], 1
-    per_tx: list[list[tuple[int, int]]] = []
-    for i, j in transmissions(result, dot_s=dot_s):
-        n_parts = -(-(j - i) // MAX_ZOOM_CHARS)
-        size = -(-(j - i) // n_parts)
-        per_tx.append([(a, min(a + size, j)) for a in range(i, j, size)])
+    per_tx = [_split_at_words(chars, i, j) for i, j in transmissions(result, dot_s=dot_s)]
     n_chunks = sum(len(p) for p in per_tx)
-    # the start of every transmission first, the longest transmissions before stray
-    # characters in the pauses, then the rest in order
-    firsts = sorted((p[0] for p in per_tx), key=lambda c: (-(c[1] - c[0]), c[0]))
-    order = firsts + [c for p in per_tx for c in p[1:]]
-    return sorted(order[:MAX_ZOOMS]), n_chunks
+    # first the start of every transmission of a few characters or more, the longest
+    # first; then more of the long ones, spread so that each is seen from start to end;
+    # last the stray characters in the pauses
+    longest = max(p[-1][1] - p[0][0] for p in per_tx)
+    big = [p for p in per_tx if p[-1][1] - p[0][0] >= min(MIN_ZOOM_CHARS, longest)]
+    small = [p[0] for p in per_tx if p[-1][1] - p[0][0] < min(MIN_ZOOM_CHARS, longest)]
+    chosen = sorted((p[0] for p in big), key=lambda c: (-(c[1] - c[0]), c[0]))[:MAX_ZOOMS]
+    rest = [c for p in big for c in p[1:]]
+    n_left = MAX_ZOOMS - len(chosen)
+    if rest and n_left > 0:
+        picks = np.unique(np.round(np.linspace(0, len(rest) - 1, min(n_left, len(rest)))))
+        chosen += [rest[int(k)] for k in picks]
+    chosen += small[: MAX_ZOOMS - len(chosen)]
+    return sorted(chosen), n_chunks
+
+
+def _split_at_words(chars, i: int, j: int) -> list[tuple[int, int]]:
+    """Characters [i, j) in runs of at most MAX_ZOOM_CHARS, cut before a word if one is near."""
+    out = []
+    a = i
+    while a < j:
+        b = min(a + MAX_ZOOM_CHARS, j)
+        if b < j:
+            words = [k for k in range(a + MAX_ZOOM_CHARS // 2, b + 1) if chars[k].word_start]
+            b = words[-1] if words else b
+        out.append((a, b))
+        a = b
+    return out
 
 
 def _mark_chunks(ax: Axes, result: Reception, chunks: list[tuple[int, int]]) -> None:
@@ -648,7 +669,12 @@ def _detection_bandwidth_hz(result: Reception) -> float | None:
 
 
 def _name(result: Reception) -> str:
-    return Path(result.file).name or result.file
+    return _plain(Path(result.file).name or result.file)
+
+
+def _plain(text: str) -> str:
+    """Text as it is: a pair of dollar signs would otherwise start matplotlib's math."""
+    return text.replace("$", r"\$")
 
 
 def _title(result: Reception) -> str:
@@ -667,11 +693,11 @@ def _title(result: Reception) -> str:
     text = result.text
     if len(text) > MAX_TITLE_CHARS:
         text = text[: MAX_TITLE_CHARS - 1].rstrip() + "…"
-    second = f"text: {text}" if text else "text: (nothing decoded)"
+    second = f"text: {_plain(text)}" if text else "text: (nothing decoded)"
     if result.n_unknown:
         second += f"    ({result.n_unknown} unknown, shown as {PLACEHOLDER})"
     lines = [first, second]
     said = list(result.warnings) + list(result.notes)
     if said:
-        lines.append("; ".join(said))
+        lines.append(_plain("; ".join(said)))
     return "\n".join(lines)

@@ -338,3 +338,29 @@ def test_cli_plot_option_writes_one_figure_per_file(tmp_path):
     bad = CliRunner().invoke(main, ["decode", str(paths[0]), "--plot", str(tmp_path / "f.jpg")])
     assert bad.exit_code == 2
     assert "f.jpg: figure format '.jpg'" in bad.output
+
+
+def test_zooms_on_one_long_transmission_cut_at_words_and_reach_its_end():
+    from okdecode.text import Character
+
+    # 300 characters in words of five at 20 WPM (a dot of 60 ms), no pause among them
+    chars, t = [], 1.0
+    for k in range(300):
+        chars.append(Character(char="E", pattern=".", start_s=t, end_s=t + 0.06,
+                               confidence=0.9, word_start=k % 5 == 0))
+        t += 0.06 + (0.42 if k % 5 == 4 else 0.18)  # ITU-R M.1677-1: gaps of 7 and 3 dots
+    bare = report.empty(file="long.wav", duration_s=t + 1.0, rate_hz=8000.0, channel=0,
+                        decoder="threshold", warnings=[], notes=[])
+    result = dataclasses.replace(bare, text="E" * 300, characters=tuple(chars),
+                                 timing=dataclasses.replace(bare.timing, unit_ms=60.0))
+    fig = plot.plot_reception(result)
+    spans = []
+    for ax in axes_titled(fig, "zoom "):
+        first, last = ax.get_title(loc="left").split("characters ")[1].split(" of ")[0].split(
+            " to ")
+        spans.append((int(first) - 1, int(last)))
+    assert len(spans) == plot.MAX_ZOOMS
+    assert spans[0][0] == 0 and spans[-1][1] == 300
+    for a, b in spans:
+        assert 0 < b - a <= plot.MAX_ZOOM_CHARS
+        assert chars[a].word_start
