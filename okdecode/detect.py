@@ -27,10 +27,14 @@ energy over its noise power is a sum of ``m`` unit exponentials, i.e. ``chi^2_{2
 ``2 m n_mark`` and ``2 m n_space`` degrees of freedom: the single-test false-alarm
 probability ``p = P(F_{d1,d2} > F)`` is exact and needs no noise estimate. The search
 takes the largest ``F`` over start times (a grid of ``samples_per_unit`` per dot), speeds
-(5 to 50 WPM on a geometric grid) and Farnsworth stretches; the false-alarm probability
-of the search is the Sidak correction ``1 - (1 - p)^N`` with an effective number of
-tests ``N``: every trial speed and stretch counts once and start times count one per dot
-(shifting the template by a whole dot exchanges the roles of most cells). That count is
+(5 to 50 WPM on a geometric grid) and Farnsworth stretches, first on a coarse grid by
+FFT correlation over every start, then on a fine grid around the best coarse fits. The
+false-alarm probability of the search is the Sidak correction ``1 - (1 - p)^N`` [3]_ with
+an effective number of tests ``N``, counted on the coarse grid: the statistic
+decorrelates when the template moves by about one sub-window, so start times count one
+per sub-window, and each coarse speed step (which moves the template's ends by ``4 e``
+dots) counts ``3 e m`` tests and each stretch step ``2 e`` (speed and stretch move the
+ends alike, so the second adds less). These factors are a heuristic of this module,
 checked against noise-only trials (``tests/test_detect.py``, ``bench/bench_detection.py``).
 When the carrier itself had to be guessed, ``N`` is multiplied by the number of carrier
 hypotheses tried (Bonferroni).
@@ -83,10 +87,14 @@ FINE_UNITS = 0.25
 COARSE_PER_UNIT, FINE_PER_UNIT = 2, 6
 #: Coarse fits searched again on the fine grid.
 N_REFINE = 4
+#: Effective tests per coarse grid step, per dot of end misalignment (times the
+#: sub-windows per dot for speed), from the correlation of the statistic between grid
+#: points and checked by noise-only trials (bench/bench_detection.py).
+SPEED_TESTS, STRETCH_TESTS = 3.0, 2.0
 #: Default false-alarm probability of a detection (the issue's 1 %).
 ALPHA = 0.01
 #: Largest share of the mark cells' excess energy that the space cells may hold.
-MAX_LEAK = 0.35
+MAX_LEAK = 0.3
 
 
 @dataclass(frozen=True)
@@ -337,7 +345,7 @@ def _coarse(energies: CellEnergies, lay: Layout, speeds: np.ndarray, *, max_stre
     """Every speed, stretch and start on a coarse grid, by FFT correlation.
 
     Returns the ``keep`` best fits (a few per speed at most) and the effective number of
-    tests of the grid (one per speed, stretch and dot of start time).
+    tests of the grid (module notes).
     """
     from scipy import fft, special
 
@@ -357,9 +365,9 @@ def _coarse(energies: CellEnergies, lay: Layout, speeds: np.ndarray, *, max_stre
             continue
         stretches, mpos, spos, last = stretches[fit], mpos[fit], spos[fit], last[fit]
         n_t = stretches.size
-        # tests: start times one per sub-window; along speed (and stretch, when more
-        # than one is tried) one per sub-window of end misalignment, 2 e m per grid step
-        dims = (2.0 * grid_units * m) ** (1 + (n_t > 1))
+        # effective tests (module notes): start times one per sub-window, 3 e m per
+        # speed step and 2 e per stretch step
+        dims = SPEED_TESTS * grid_units * m * (STRETCH_TESTS * grid_units if n_t > 1 else 1.0)
         n_fft = fft.next_fast_len(k)
         bank = np.zeros((n_t, n_fft), dtype=np.complex128)
         rows = np.arange(n_t)[:, None]
