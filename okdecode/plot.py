@@ -330,9 +330,20 @@ def _draw_search_spectrum(ax: Axes, result: Reception) -> None:
                                                         else ""),
                         (x, y), xytext=(0, 7), textcoords="offset points", fontsize=7,
                         ha="center", va="bottom", color=COLOURS["black"], gid="interferer")
-        top = max(float(np.max(spec.power_dbfs[ch])), float(np.max(lvl)))
-        bottom = float(np.min(spec.power_dbfs[ch]))
-        ax.set_ylim(bottom - 1.0, top + 0.25 * (top - bottom) + 1.0)
+    steady = _steady_peaks(spec, ch)
+    if steady.size:
+        lvl = spec.power_dbfs[ch, steady]
+        f_hz = np.array([_peak_hz(spec, ch, int(b)) for b in steady])
+        fs = (f_hz - ref_hz) / scale
+        ax.plot(fs, lvl, ls="none", marker="s", ms=5, color=COLOURS["grey"],
+                markeredgecolor=COLOURS["black"], label="steady, not keyed")
+        for hz, x, y in zip(f_hz, fs, lvl, strict=True):
+            ax.annotate(f"{hz:,.0f} Hz", (x, y), xytext=(0, 6),
+                        textcoords="offset points", fontsize=7, ha="center", va="bottom",
+                        color=COLOURS["grey"], gid="steady")
+    # head room for the labels over the peaks
+    top, bottom = float(np.max(spec.power_dbfs[ch])), float(np.min(spec.power_dbfs[ch]))
+    ax.set_ylim(bottom - 1.0, top + 0.25 * (top - bottom) + 1.0)
     if not spec.carriers:
         ax.text(0.5, 0.95, "no bin's power is keyed", transform=ax.transAxes, ha="center",
                 va="top", fontsize=9, color=COLOURS["vermillion"])
@@ -341,6 +352,38 @@ def _draw_search_spectrum(ax: Axes, result: Reception) -> None:
     # below the axis, where it hides no peak
     ax.legend(lines[0] + lines2[0], lines[1] + lines2[1], fontsize=7, ncol=2,
               loc="upper center", bbox_to_anchor=(0.5, -0.22), frameon=False)
+
+
+def _steady_peaks(spec, ch: int, *, above_db: float = 10.0, n_max: int = 4) -> np.ndarray:
+    """Bins of spectral peaks well over the floor whose power is not keyed (hum, carriers).
+
+    A peak is a bin above both neighbours and ``above_db`` over the median bin; one within
+    three bins of a keyed candidate belongs to that candidate (the search's own rule).
+    """
+    p = spec.power_dbfs[ch]
+    if p.size < 5:
+        return np.empty(0, dtype=int)
+    peak = np.zeros(p.size, dtype=bool)
+    peak[1:-1] = (p[1:-1] > p[:-2]) & (p[1:-1] >= p[2:])
+    peak &= p > np.median(p) + above_db
+    peak &= spec.score[ch] < spec.threshold
+    peak[:2] = False  # DC and its leakage
+    for c in spec.carriers:
+        near = np.abs(spec.frequency_hz - c.frequency_hz) <= 3.5 * spec.bin_hz
+        peak[near] = False
+    bins = np.flatnonzero(peak)
+    return np.sort(bins[np.argsort(-p[bins])][:n_max])
+
+
+def _peak_hz(spec, ch: int, b: int) -> float:
+    """Frequency of a spectral peak, interpolated by a parabola through log power, Hz."""
+    p = spec.power_dbfs[ch]
+    if 0 < b < p.size - 1:
+        den = p[b - 1] - 2 * p[b] + p[b + 1]
+        if den < 0:
+            return float(spec.frequency_hz[b]
+                         + np.clip(0.5 * (p[b - 1] - p[b + 1]) / den, -0.5, 0.5) * spec.bin_hz)
+    return float(spec.frequency_hz[b])
 
 
 def _draw_fine_spectrum(ax: Axes, result: Reception) -> None:
@@ -469,6 +512,8 @@ def _draw_waterfall(ax: Axes, result: Reception, fig: Figure) -> None:
     if bw is not None:
         for y in (-bw / 2, bw / 2):
             ax.axhline(y, color=COLOURS["orange"], lw=0.6, ls="--")
+        ax.set_title(f"spectrogram near the carrier (dashed: detection band, {bw:.1f} Hz)",
+                     loc="left", fontsize=10)
 
 
 # ---------------------------------------------------------------------------------------

@@ -364,3 +364,18 @@ def test_zooms_on_one_long_transmission_cut_at_words_and_reach_its_end():
     for a, b in spans:
         assert 0 < b - a <= plot.MAX_ZOOM_CHARS
         assert chars[a].word_start
+
+
+def test_steady_carrier_is_marked_as_rejected():
+    # a steady, unkeyed carrier is not a message (issue 2); the figure shows where it was
+    rec = synth("", rate_hz=8000.0, cn0_dbhz=40.0, duration_s=5.0, seed=13, amplitude=0.1,
+                stations=(Station(carrier_hz=1500.0, message=None),))
+    result = decode_array(rec.samples, rec.rate_hz, source="steady.wav")
+    assert result.text == ""
+    fig = plot.plot_reception(result)
+    (search,) = axes_titled(fig, "carrier search")
+    steady = [float(t.get_text().split()[0].replace(",", "")) for t in search.texts
+              if t.get_gid() == "steady"]
+    # within one search bin of the generator's frequency
+    assert any(abs(f - 1500.0) <= result.spectrum.bin_hz for f in steady), steady
+    assert "steady.wav: no keyed signal found" in all_texts(fig)
