@@ -6,9 +6,9 @@ The chain makes two passes over the capture at its own rate and no more:
    keeps per frequency bin the statistics of its power from frame to frame. A keyed
    carrier's power switches slowly between two levels, so it is correlated from one
    frame to the next; noise is not, and neither is a steady carrier or hum, whose
-   power stays put. The autocorrelation of each bin's power at lags of one to four
-   frames, summed, is the keying score (under the null each lag's is about N(0, 1/n)
-   for n frames).
+   power stays put. The autocorrelation of each bin's log power (relative to the
+   frame's median bin) at lags of one to four frames, summed, is the keying score
+   (under the null each lag's is about N(0, 1/n) for n frames).
 2. :class:`Downconverter` mixes the chosen carrier to 0 Hz and decimates in polyphase
    FIR stages to a complex baseband of about 1 kHz, which is kept: everything after
    (fine tuning, the matched envelope, re-tuning once the speed is known, the C/N0
@@ -46,8 +46,10 @@ BASEBAND_MIN_HZ = 750.0
 #: slowly from frame to frame the way keying does (the frame's length is rounded to a
 #: fast FFT length, which moves these by a few per cent at most).
 SEARCH_FRAME_S = 0.013
-#: A keyed bin spends at least this fraction of frames near the noise floor.
-MIN_KEY_UP_FRACTION = 0.1
+#: A keyed bin's log power varies at least this much (variance, natural log): noise
+#: alone gives pi²/6 = 1.64, keying more; a steady carrier 10 dB above the noise in its
+#: bin gives about 0.2 and less the stronger it is.
+MIN_KEYED_SPREAD = 0.5
 #: Lags, in frames, over which the search sums the power autocorrelation.
 SEARCH_LAGS = 4
 #: The carrier search judges keying over segments of this length, s, so that a short
@@ -65,8 +67,8 @@ class Carrier:
 
     frequency_hz: float  # absolute (center_hz included)
     channel: int
-    score: float  # largest segment z-score of the summed power autocorrelation
-    keyed_power: float  # summed autocovariance of bin power, relative to the noise floor²
+    score: float  # largest segment z-score of the summed log-power autocorrelation
+    keyed_power: float  # summed autocovariance of log power (strength of the keying)
     level_db: float  # mean bin power over the noise floor, dB
     width_hz: float = 0.0  # span of the keyed bins around it (wide: a pulsed carrier), Hz
     centroid_hz: float | None = None  # power-weighted centre of that span, absolute, Hz
@@ -107,13 +109,12 @@ class KeyingSearch:
         self.n_bins = n if is_complex else n // 2 + 1
         shape = (n_channels, self.n_bins)
         self._sum = np.zeros(shape)
-        # S1, S2, the lagged products S(l) for l = 1..SEARCH_LAGS, and the count of
-        # frames near the noise floor (key-up evidence)
-        self._seg = [np.zeros(shape) for _ in range(3 + SEARCH_LAGS)]
+        # S1, S2 and the lagged products S(l) for l = 1..SEARCH_LAGS
+        self._seg = [np.zeros(shape) for _ in range(2 + SEARCH_LAGS)]
         self._seg_n = 0
         self._best_z = np.full(shape, -np.inf)
         self._best_cov = np.zeros(shape)
-        self._best_low = np.zeros(shape)  # fraction of frames near the floor, best segment
+        self._best_spread = np.zeros(shape)  # variance of log power in the best segment
         self._last = np.empty((n_channels, 0, self.n_bins))  # the frames before this block
         self._pending = np.empty((0, n_channels), dtype=np.complex64 if is_complex
                                  else np.float32)
@@ -143,16 +144,19 @@ class KeyingSearch:
             if self._seg_n >= self._frames_per_segment:
                 self._close_segment()
 
-    def _accumulate(self, p: np.ndarray) -> None:
-        self._sum += p.sum(axis=1)
-        s1, s2, low, *lagged = self._seg
+    def _accumulate(self, raw: np.ndarray) -> None:
+        self._sum += raw.sum(axis=1)
+        # log power, each frame relative to its own median bin (mostly noise). The log
+        # tames the exponential tails of noise power, so the autocorrelation's null
+        # distribution is close to normal for a few hundred frames; the median takes
+        # out a receiver's AGC, which lifts the whole band in the spaces and would
+        # otherwise key every bin but the carrier's
+        tiny = np.finfo(np.float32).tiny
+        median = np.median(raw, axis=2, keepdims=True)
+        p = np.log(np.maximum(raw, tiny)) - np.log(np.maximum(median, tiny))
+        s1, s2, *lagged = self._seg
         s1 += p.sum(axis=1)
         s2 += np.einsum("cfb,cfb->cb", p, p)
-        # a frame is near the floor when its power is under three times the frame's
-        # median over all bins (most bins hold noise alone, whose median power is ln 2
-        # of its mean: noise alone stays under that 87 % of the time)
-        floor = np.median(p, axis=2, keepdims=True)
-        low += (p < 3.0 * floor).sum(axis=1)
         both = np.concatenate([self._last, p], axis=1)
         k = self._last.shape[1]
         for lag, acc in enumerate(lagged, start=1):
@@ -167,7 +171,7 @@ class KeyingSearch:
     def _close_segment(self) -> None:
         n = self._seg_n
         if n >= 8:
-            s1, s2, low, *lagged = self._seg
+            s1, s2, *lagged = self._seg
             mean = s1 / n
             var = np.maximum(s2 / n - mean**2, 1e-300)
             cov = np.zeros_like(mean)
@@ -181,7 +185,7 @@ class KeyingSearch:
             better = z > self._best_z
             self._best_z = np.where(better, z, self._best_z)
             self._best_cov = np.where(better, cov, self._best_cov)
-            self._best_low = np.where(better, low / n, self._best_low)
+            self._best_spread = np.where(better, var, self._best_spread)
             self.n_segments += 1
         self._seg = [np.zeros_like(a) for a in self._seg]
         self._seg_n = 0
@@ -215,7 +219,7 @@ class KeyingSearch:
         n_tests = max(int(valid.sum()) * z.shape[0] * max(self.n_segments, 1), 1)
         # Bonferroni over every bin and segment at a 1 % false-alarm rate in all
         threshold = max(4.0, math.sqrt(2.0 * math.log(n_tests / 0.01)))
-        keyed_power = self._best_cov / floor**2
+        keyed_power = self._best_cov  # of log power: grows with the keyed carrier's SNR
         found: list[Carrier] = []
         taken = np.zeros_like(z, dtype=bool)
         order = np.argsort(-keyed_power, axis=None)
@@ -223,13 +227,13 @@ class KeyingSearch:
             ch, b = np.unravel_index(flat, z.shape)
             if not valid[b] or z[ch, b] < threshold or keyed_power[ch, b] <= 0:
                 continue
-            if self._best_low[ch, b] < MIN_KEY_UP_FRACTION:
-                # never down at the floor: a steady carrier that beats with a neighbour
-                # or with its own image swings slowly, but it is not keyed
+            if self._best_spread[ch, b] < MIN_KEYED_SPREAD:
+                # its power hardly moves: a steady carrier that beats a little with a
+                # neighbour swings slowly, but it is not keyed
                 continue
             if taken[:, b].any():
                 continue
-            lo, hi = _keyed_span(keyed_power[ch], z[ch], b, threshold)
+            lo, hi = _keyed_span(mean[ch], z[ch], b, threshold)
             width_hz = (hi - lo) * bin_hz
             excess = np.maximum(mean[ch, lo:hi] - floor[ch, 0], 0.0)
             centroid = (float(np.sum(freq[lo:hi] * excess) / np.sum(excess))
@@ -250,14 +254,15 @@ class KeyingSearch:
                         n_frames=self.n_frames)
 
 
-def _keyed_span(keyed: np.ndarray, z: np.ndarray, b: int, threshold: float,
+def _keyed_span(mean: np.ndarray, z: np.ndarray, b: int, threshold: float,
                 max_gap: int = 3) -> tuple[int, int]:
-    """Bins [lo, hi) around b that are keyed at a tenth of b's keyed power or more.
+    """Bins [lo, hi) around b that are keyed and hold a hundredth of b's power or more.
 
     Gaps of up to ``max_gap`` bins are bridged, so the comb of a spark train counts as
-    one carrier.
+    one carrier. The power bound keeps out a strong carrier's far leakage, which is as
+    keyed as the carrier itself where a receiver's filter has taken the noise away.
     """
-    ok = (keyed >= 0.1 * keyed[b]) & (z >= threshold)
+    ok = (mean >= 0.01 * mean[b]) & (z >= threshold)
     lo = hi = b
     gap = 0
     while lo > 0 and gap <= max_gap:
@@ -265,7 +270,7 @@ def _keyed_span(keyed: np.ndarray, z: np.ndarray, b: int, threshold: float,
         gap = 0 if ok[lo] else gap + 1
     lo += gap
     gap = 0
-    while hi < keyed.size - 1 and gap <= max_gap:
+    while hi < mean.size - 1 and gap <= max_gap:
         hi += 1
         gap = 0 if ok[hi] else gap + 1
     hi -= gap
@@ -305,7 +310,7 @@ def search_carriers(capture: Capture, *, min_hz: float = 100.0,
     Notes
     -----
     For n independent frames of noise, or of a steady carrier in noise, the sample
-    autocorrelation of a bin's power at each lag is close to N(0, 1/n) (Bartlett's
+    autocorrelation of a bin's log power at each lag is close to N(0, 1/n) (Bartlett's
     formula for white series), so the sum of K lags gives ``z = sum(r) * sqrt(n / K)``,
     compared with a Bonferroni threshold over all bins and segments. Keying correlates
     the power of nearby frames, since a mark or a space outlasts a 16 ms frame at any

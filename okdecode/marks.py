@@ -135,9 +135,11 @@ def levels(envelope: Envelope, *, window_s: float, p_fa: float = 1e-3,
             sigma = _fill_nearest(masked)
         if envelope.noise_sigma is not None:
             # each estimate errs high in its own way (missed marks in the spaces; strong
-            # sidebands in the noise band), so the smaller one is kept
+            # sidebands in the noise band), so the smaller one is kept; but not below
+            # half the other, since a receiver's narrow filter may have taken the noise
+            # band's noise away
             measured = envelope.noise_sigma[np.minimum(starts + win // 2, x.size - 1)]
-            sigma = np.where(measured > 0, np.minimum(sigma, measured), sigma)
+            sigma = np.where(measured > 0, np.clip(measured, 0.5 * sigma, sigma), sigma)
         clear = sigma * math.sqrt(2.0 * math.log(1.0 / p_fa))
         # frames are sorted: the samples above `clear` are the last n_above of each row
         n_above = m - np.array([np.searchsorted(frames[i], clear[i], side="right")

@@ -2,9 +2,10 @@
 
 C/N0 and SNR
 ------------
-The baseband is filtered with a moving average of ``n`` samples (a quarter dot, at most
-10 ms) followed by a short low-pass that removes the moving average's far sidelobes,
-so the noise it passes lies inside the flat passband of the decimation chain. Its
+The baseband is filtered with a moving average of ``n`` samples (half a dot, at most
+20 ms) followed by a short low-pass that removes the moving average's far sidelobes,
+so the noise it passes lies inside the flat passband of the decimation chain and of
+any receiver filter of 200 Hz or more. Its
 equivalent noise bandwidth is ``B = rate * sum(h**2) / sum(h)**2`` (two-sided, for the
 complex baseband). Over the interiors of the marks the mean power is ``S + N`` and over
 the interiors of the spaces it is ``N``; then
@@ -167,11 +168,16 @@ def timing(symbols: Symbols) -> Timing:
 
 
 def measurement_filter(rate_hz: float, dot_s: float) -> np.ndarray:
-    """Moving average of a quarter dot (at most 10 ms) tamed by a short low-pass."""
+    """Moving average of half a dot (at most 20 ms) tamed by a short low-pass.
+
+    About 50 to 100 Hz wide: narrow enough that a receiver's own audio filter (rarely
+    under 200 Hz) is flat across it, so the noise it measures is the noise at the
+    carrier.
+    """
     from scipy import signal
 
-    n = max(1, int(round(min(0.25 * dot_s, 0.010) * rate_hz)))
-    lp = signal.firwin(15, min(200.0, 0.3 * rate_hz), fs=rate_hz)
+    n = max(1, int(round(min(0.5 * dot_s, 0.020) * rate_hz)))
+    lp = signal.firwin(15, min(100.0, 0.3 * rate_hz), fs=rate_hz)
     h = np.convolve(np.ones(n) / n, lp)
     return h / h.sum()
 
