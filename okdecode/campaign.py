@@ -291,6 +291,8 @@ def summarise(rows: list[dict], *, threshold_dbhz: float = THRESHOLD_CN0_DBHZ) -
         "threshold_dbhz": threshold_dbhz,
         "range_m": range_estimate_m(fit, threshold_dbhz),
         "weakest_received_dbhz": min(got_cn0) if got_cn0 else None,
+        "n_detected": sum(bool(r["detected"]) for r in rows),
+        "n_detection": sum(r["detected"] is not None for r in rows),
     }
 
 
@@ -336,6 +338,17 @@ def _received_cell(r: dict) -> str:
     return '<span class="yes">yes</span>' if r["received"] else '<span class="no">no</span>'
 
 
+def _detected_cell(r: dict) -> str:
+    if r["detected"] is None:
+        return '<span class="muted">—</span>'
+    det = (r.get("verification") or {}).get("detection") or {}
+    pfa = det.get("false_alarm_probability")
+    tail = f' <span class="muted">(false alarm {pfa:.1g})</span>' if isinstance(
+        pfa, (int, float)) else ""
+    word = '<span class="yes">yes</span>' if r["detected"] else '<span class="no">no</span>'
+    return word + tail
+
+
 def _row_html(r: dict) -> str:
     name = _e(r["file"])
     if r.get("figure"):
@@ -351,7 +364,8 @@ def _row_html(r: dict) -> str:
     return (f"<tr><td><code>{name}</code>"
             + (f'<div class="muted">{details}</div>' if details else "")
             + f'</td><td class="n">{_e(_distance(r["distance_m"]))}</td>'
-            f"<td>{_received_cell(r)}</td><td class=\"n\">{cer}</td>"
+            f"<td>{_received_cell(r)}</td><td>{_detected_cell(r)}</td>"
+            f'<td class="n">{cer}</td>'
             f'<td class="n">{_num(r["cn0_dbhz"], ".1f")}</td>'
             f'<td class="n">{_num(r["snr_db"], ".1f")}</td>'
             f'<td class="n">{_num(r["wpm"], ".1f")}</td>'
@@ -387,6 +401,8 @@ def render_report(rows: list[dict], *, title: str = "okdecode range test",
         cards.append(("path-loss slope", f"{fit.slope_db_per_decade:.1f}{err} dB/decade"))
     if range_m is not None:
         cards.append(("estimated range (extrapolated)", _distance(range_m)))
+    if s["n_detection"]:
+        cards.append(("known message detected", f"{s['n_detected']} of {s['n_detection']}"))
     parts = [
         "<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
         '<meta name="viewport" content="width=device-width, initial-scale=1">',
@@ -406,6 +422,9 @@ def render_report(rows: list[dict], *, title: str = "okdecode range test",
                 f"C/N0 falls {-fit.slope_db_per_decade:.1f}{err} per decade of distance "
                 f"(free space: 20 dB per decade), residual spread "
                 f"{_num(fit.residual_db, '.1f')} dB.")
+        if s["weakest_received_dbhz"] is not None:
+            text += (" The weakest recording with a complete message had a C/N0 of "
+                     f"{s['weakest_received_dbhz']:.1f} dB-Hz.")
         parts.append(f"<p>{_e(text)}</p>")
         if range_m is not None:
             parts.append(
@@ -431,7 +450,8 @@ def render_report(rows: list[dict], *, title: str = "okdecode range test",
                      "</figcaption></figure>")
     parts.append("</section>")
     parts.append('<section id="recordings"><h2>Recordings</h2><div class="scroll"><table>'
-                 "<thead><tr><th>file</th><th>distance</th><th>received</th><th>CER</th>"
+                 "<thead><tr><th>file</th><th>distance</th><th>received</th>"
+                 "<th>known message detected</th><th>CER</th>"
                  "<th>C/N0, dB-Hz</th><th>SNR, dB</th><th>WPM</th><th>duration, s</th>"
                  "<th>text</th><th>errors and warnings</th></tr></thead><tbody>")
     parts.extend(_row_html(r) for r in rows)

@@ -13,6 +13,7 @@ import sys
 import time
 from pathlib import Path
 
+import numpy as np
 import pytest
 from click.testing import CliRunner
 from hypothesis import given
@@ -168,6 +169,19 @@ def test_cer_counts_a_procedural_signal_as_one_character():
     assert batch.cer("xq7zb", "XQ7ZN") == pytest.approx(1 / 5)
 
 
+def test_the_fallback_comparison_gives_the_keys_of_okdecode_verify(campaign):
+    from okdecode.receiver import decode_file
+
+    rec = decode_file(campaign / "r01.flac")
+    mine = batch._fallback_verification(rec, MESSAGES[1], 0.0)
+    assert (mine["received"], mine["cer"], mine["copies"]) == (True, 0.0, 1)
+    assert batch._fallback_verification(rec, "XQ7ZB", 0.0)["received"] is False
+    verify = pytest.importorskip("okdecode.verify")
+    theirs = verify.verify_reception(rec, MESSAGES[1], detect=False).to_dict()
+    assert set(mine) <= set(theirs)
+    assert (theirs["received"], theirs["cer"]) == (mine["received"], mine["cer"])
+
+
 # --- the store ------------------------------------------------------------------------------
 
 
@@ -285,6 +299,38 @@ def test_a_rerun_takes_new_metadata_without_decoding_again(campaign, tmp_path):
     assert (third.n_processed, third.n_skipped) == (1, 1) and third.n_received == 1
 
 
+def test_a_sigmf_recording_keeps_its_own_metadata_and_hashes_its_data(tmp_path):
+    from okdecode.synth import synth
+
+    rec = synth("XQ7ZB", rate_hz=8000.0, iq=True, carrier_hz=600.0, wpm=25.0, cn0_dbhz=45.0,
+                seed=3)
+    rec.samples.astype(np.complex64).tofile(tmp_path / "hollin.sigmf-data")
+    meta = {"global": {"core:datatype": "cf32_le", "core:sample_rate": 8000.0,
+                       "core:version": "1.0.0", "core:description": "XQ7ZB at Hollin Cross"},
+            "captures": [{"core:sample_start": 0}], "annotations": []}
+    (tmp_path / "hollin.sigmf-meta").write_text(json.dumps(meta))
+    out = tmp_path / "out"
+    first = batch.run(tmp_path, out, workers=1, report=False, figures=False)
+    assert first.n_failed == 0
+    with batch.Store(out / "results.sqlite") as store:
+        (got,) = store.rows()
+    assert got["file"] == "hollin.sigmf-meta" and got["text"] == "XQ7ZB"
+    assert got["capture_metadata"]["sigmf"]["global"]["core:description"] == (
+        "XQ7ZB at Hollin Cross")
+    # the key covers the samples too: new data under the same metadata is a new recording
+    (rec.samples[::-1]).astype(np.complex64).tofile(tmp_path / "hollin.sigmf-data")
+    second = batch.run(tmp_path, out, workers=1, report=False, figures=False)
+    assert (second.n_processed, second.n_skipped) == (1, 0)
+
+
+def test_the_progress_bar_counts_when_asked(campaign, tmp_path, capsys):
+    folder = tmp_path / "one"
+    folder.mkdir()
+    (folder / "r00.flac").write_bytes((campaign / "r00.flac").read_bytes())
+    batch.run(folder, tmp_path / "o", workers=1, report=False, figures=False, progress=True)
+    assert "1/1 r00.flac" in capsys.readouterr().err
+
+
 # --- resuming after a real kill -------------------------------------------------------------
 
 
@@ -321,11 +367,12 @@ def test_a_killed_run_resumes_to_a_complete_consistent_store(tmp_path):
     assert 1 <= n_killed < 24  # results landed, and the kill came before the end
     done = subprocess.run(cmd + ["--json"], cwd=REPO, env=env, capture_output=True, text=True,
                           timeout=300)
-    assert done.returncode == 0, done.stderr
+    assert done.returncode == 0, done.stderr + done.stdout
     summary = json.loads(done.stdout.splitlines()[-1])
     assert summary["n_skipped"] == n_killed and summary["n_processed"] == 24 - n_killed
-    # complete and the same as a run that was never interrupted
-    batch.run(folder, tmp_path / "clean", workers=1, report=False, figures=False)
+    # complete and the same as a run of the same command that was never interrupted
+    clean = [*cmd[:6], str(tmp_path / "clean"), *cmd[7:]]
+    subprocess.run(clean, cwd=REPO, env=env, capture_output=True, timeout=300, check=True)
     assert content(store_path) == content(tmp_path / "clean" / "results.sqlite")
     assert len(content(store_path)) == 24
 

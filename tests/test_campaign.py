@@ -215,6 +215,18 @@ def test_the_report_screenshot_is_not_blank(report_dir, tmp_path):
     assert pixels[..., :3].std() > 0.05  # text and plots, not an empty page
 
 
+def test_the_summary_counts_the_received_and_the_furthest(report_dir):
+    with batch.Store(report_dir / "results.sqlite") as store:
+        rows = store.rows()
+    s = campaign.summarise(rows)
+    # made at 45, 39, 33 and 15 dB-Hz: the decoding threshold lies between the last two
+    assert [r["received"] for r in rows] == [True, True, True, False]
+    assert (s["n_received"], s["n_verified"], s["furthest_received_m"]) == (3, 4, 200.0)
+    assert s["fit"].n_points == sum(r["cn0_dbhz"] is not None for r in rows)
+    page = (report_dir / "report.html").read_text(encoding="utf-8")
+    assert "<b>3 of 4</b>" in page and "<b>200 m</b>" in page
+
+
 def test_each_recording_links_to_its_figure(report_dir):
     page = (report_dir / "report.html").read_text(encoding="utf-8")
     with batch.Store(report_dir / "results.sqlite") as store:
