@@ -859,7 +859,9 @@ def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | Non
     if not (isinstance(max_cer, (int, float)) and 0.0 <= max_cer <= 1.0):
         raise ParameterError("--max-cer", f"{max_cer!r}", expected="a number from 0 to 1")
     if workers is None:
-        workers = os.cpu_count() or 1
+        # the CPUs this process may use (a container's share), not all the machine has
+        workers = (len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                   else os.cpu_count() or 1)
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise ParameterError("--workers", f"{workers!r}", expected="a count >= 1")
     out_dir = Path(out)
