@@ -338,8 +338,9 @@ def verify(files, expect_text, expect_file, alternatives, max_cer, no_detect, ca
                    "campaign summary as a last object.")
 def batch(source, out_dir, workers, scheduler, max_cer, figures, as_json):
     """Process a range-test campaign: INPUT is a folder (searched recursively) or a manifest
-    CSV with a 'file' column and optional expect, distance_m, rate_hz, iq_format, carrier_hz,
-    channel (other columns are kept as metadata).
+    CSV with a 'file' column (relative to the manifest) and optional expect, distance_m,
+    rate_hz, iq_format, center_hz, carrier_hz, channel, wpm (other columns are kept as
+    metadata).
 
     Results go to DIR/results.sqlite one by one; a re-run skips what is stored, so an
     interrupted run resumes. Exit 0 when every recording was processed, 1 when some
