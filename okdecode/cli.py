@@ -219,15 +219,16 @@ def _verify_summary(v) -> str:
     lines.append(f"  text      {d['text'] or '(nothing decoded)'}")
     if d["best_copy"]["text"] and d["best_copy"]["text"] != d["text"]:
         lines.append(f"  best copy {d['best_copy']['text']}")
-    for diff in d["differences"][:40]:
+    shown = d["differences"] if d["text"] else []  # with nothing decoded, all is missing
+    for diff in shown[:40]:
         at = "   n/a  " if diff["time_s"] is None else f"{diff['time_s']:8.2f}"
         e = "" if diff["expected"] is None else repr(diff["expected"])
         r = "" if diff["received"] is None else repr(diff["received"])
         what = {"substitution": f"expected {e}, got {r}", "missing": f"missing {e}",
                 "extra": f"extra {r}"}[diff["kind"]]
         lines.append(f"  at {at} s  {what}")
-    if n_diff > 40:
-        lines.append(f"  ... and {n_diff - 40} more differences")
+    if len(shown) > 40:
+        lines.append(f"  ... and {len(shown) - 40} more differences")
     det = d["detection"]
     if det is not None:
         if det["statistic"] is None:
