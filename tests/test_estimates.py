@@ -32,8 +32,9 @@ MESSAGE = "XQ7ZB TEST 73"
 CN0_GRID_DBHZ = (20.0, 25.0, 30.0, 35.0, 40.0, 45.0, 50.0)
 SEEDS = (0, 1, 2, 3, 4)
 # 5 WPM keeps a dot's E/N0 = C/N0 * 1.2 / WPM at 13.8 dB even at 20 dB-Hz, where
-# noncoherent on-off keying still errs on fewer than 1e-3 of the elements (J. G. Proakis,
-# Digital Communications; from memory), so the marks the measurement needs are there
+# noncoherent on-off keying errs on only about exp(-E / 4 N0) / 2 = 1e-3 of the elements
+# (J. G. Proakis, Digital Communications; from memory): the marks the measurement needs
+# are there
 CN0_WPM = 5.0
 SPEED_GRID = ((5.0, 35.0), (8.0, 40.0), (12.0, 35.0), (20.0, 35.0), (25.0, 45.0),
               (30.0, 35.0), (40.0, 40.0), (50.0, 35.0), (50.0, 50.0))  # (WPM, C/N0 dB-Hz)
