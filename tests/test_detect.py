@@ -54,11 +54,10 @@ def test_template_follows_itu_and_farnsworth_timing():
 
 
 @pytest.mark.parametrize("wpm", [15.0, 20.0, 40.0])
-def test_single_fit_statistic_is_fisher_f_under_noise(wpm):
+def test_single_fit_statistic_is_fisher_f_under_noise(wpm, rng):
     # under white Gaussian noise each cell's energy is chi-square with 2m degrees of
     # freedom (Proakis, Digital Communications, 2.3), so F = mean mark / mean space is
     # Fisher's F(2 m n_mark, 2 m n_space) whatever the noise level: the p-values are uniform
-    rng = np.random.default_rng(11)
     lay = layout(MSG)
     mpos, spos, last = cells(lay, 1.0, 4)
     p_values = []
@@ -72,10 +71,9 @@ def test_single_fit_statistic_is_fisher_f_under_noise(wpm):
     assert stats.kstest(p_values, "uniform").pvalue > 1e-3
 
 
-def test_search_false_alarm_probability_is_valid_on_noise():
+def test_search_false_alarm_probability_is_valid_on_noise(rng):
     # a false-alarm probability is valid when P(fa <= a) <= a for every a; counts over
     # 200 seeded noise-only recordings are held to the binomial quantile (tolerance)
-    rng = np.random.default_rng(5)
     n = 200
     fa = []
     for _ in range(n):
