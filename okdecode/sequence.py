@@ -131,8 +131,8 @@ class Law:
 
     def steps(self, k: int) -> np.ndarray:
         """The durations searched, in steps (at least 1)."""
-        # no element is shorter than half its mean (common practice: shorter is a glitch)
-        lo = max(1, int(math.floor(max(self.mean - SPAN_SD * self.sd, 0.5 * self.mean) * k)))
+        # nothing is shorter than half a dot (common practice: shorter is a glitch)
+        lo = max(k // 2, int(math.floor((self.mean - SPAN_SD * self.sd) * k)))
         hi = max(lo, int(math.ceil((self.mean + SPAN_SD * self.sd) * k)))
         return np.arange(lo, hi + 1)
 
@@ -358,32 +358,180 @@ def _law_on(d: np.ndarray, law: Law, k: int, extra: float = 0.0) -> np.ndarray:
     return np.where((d >= own[0]) & (d <= own[-1]), law.log_p(d, k) + extra, -np.inf)
 
 
+@dataclass(frozen=True)
+class _Model:
+    """Everything a Viterbi pass needs besides the evidence, in lattice steps."""
+
+    k: int
+    d_mark: np.ndarray  # every duration a dot or a dash may have
+    lp_mark: np.ndarray  # shape (len(d_mark), 2): log-probability as a dot, as a dash
+    d_el: np.ndarray
+    lp_el: np.ndarray
+    d_ch: np.ndarray
+    lp_ch: np.ndarray  # the character gap's law and the chance that no word gap follows
+    d_wd: np.ndarray
+    lp_wd: np.ndarray
+    p_min: int  # a pause is longer than any word gap
+    block: int  # no segment is shorter
+    pad: int  # no segment (nor the pause's look-back) is longer
+
+
+def _model(durations: Durations, k: int) -> _Model:
+    laws = durations
+    d_mark = _span(laws.dot.steps(k), laws.dash.steps(k))
+    lp_mark = np.stack([_law_on(d_mark, laws.dot, k), _law_on(d_mark, laws.dash, k)], -1)
+    d_el, d_ch, d_wd = laws.element.steps(k), laws.character.steps(k), laws.word.steps(k)
+    p_min = int(d_wd[-1]) + 1
+    return _Model(k=k, d_mark=d_mark, lp_mark=lp_mark, d_el=d_el,
+                  lp_el=laws.element.log_p(d_el, k),
+                  d_ch=d_ch, lp_ch=laws.character.log_p(d_ch, k) + math.log(1 - laws.p_word),
+                  d_wd=d_wd, lp_wd=laws.word.log_p(d_wd, k) + math.log(laws.p_word),
+                  p_min=p_min, block=int(min(d_mark[0], d_el[0], d_ch[0], d_wd[0])),
+                  pad=int(max(d_mark[-1], d_el[-1], d_ch[-1], p_min)))
+
+
+#: The lattice is decoded in chunks of this many dots, side by side (one numpy operation
+#: serves them all), each with this many dots of context on either side.
+CHUNK_UNITS = 150
+CONTEXT_UNITS = 40
+#: At most this many chunks are decoded together (it bounds the memory).
+MAX_CHUNKS = 48
+
+
 def viterbi(lat: _Lattice, track: _Track, durations: Durations) -> tuple[list[Segment], float]:
     """Most likely sequence of segments over the lattice, and its score (module notes).
 
     The score is the log-likelihood ratio of the sequence against noise alone plus the
     log-probabilities of its durations and characters; 0 for no mark at all.
+
+    Long lattices are cut into chunks that overlap by ``2 * CONTEXT_UNITS`` dots and
+    are decoded side by side; each keeps the characters that begin in its own stretch,
+    cut in the middle of a gap near the seam. Paths that differ that far back have
+    long since merged (the survivors of a Viterbi decoder share their past beyond a few
+    characters [4]_), so the chunks agree where they meet.
     """
-    tree = _tree()
+    model = _model(durations, lat.k)
     k = lat.k
     n_t = lat.time_s.size
-    laws = durations
-    # marks: every duration a dot or a dash may have, each class's law on it
-    d_mark = _span(laws.dot.steps(k), laws.dash.steps(k))
-    lp_mark = np.stack([_law_on(d_mark, laws.dot, k), _law_on(d_mark, laws.dash, k)], -1)
-    s_mark = (_mark_llrs(lat, track, d_mark)[:, :, None] + lp_mark[None]).astype(np.float32)
-    d_el, d_ch, d_wd = laws.element.steps(k), laws.character.steps(k), laws.word.steps(k)
-    lp_el = laws.element.log_p(d_el, k).astype(np.float32)[None, :, None]
-    lp_ch = (laws.character.log_p(d_ch, k) + math.log(1 - laws.p_word)).astype(np.float32)
-    lp_wd = (laws.word.log_p(d_wd, k) + math.log(laws.p_word)).astype(np.float32)
-    p_min = int(d_wd[-1]) + 1  # a pause is longer than any word gap
-    block = int(min(d_mark[0], d_el[0], d_ch[0], d_wd[0]))
-    pad = int(max(d_mark[-1], d_el[-1], d_ch[-1], p_min))
+    llr = _mark_llrs(lat, track, model.d_mark)
+    s_mark = (llr[:, :, None] + model.lp_mark[None]).astype(np.float32)
+    own = CHUNK_UNITS * k
+    context = max(CONTEXT_UNITS * k, 2 * model.pad)
+    if n_t <= own + 2 * context:
+        starts, width, own, context = np.array([0]), n_t, n_t, 0
+    else:
+        starts = np.arange(0, n_t, own) - context
+        width = own + 2 * context
+    chunks: list[list[Segment]] = []
+    for first in range(0, starts.size, MAX_CHUNKS):
+        batch = starts[first : first + MAX_CHUNKS]
+        idx = batch[:, None] + np.arange(width)[None, :]
+        inside = (idx >= 0) & (idx < n_t)
+        s = s_mark[np.clip(idx, 0, n_t - 1)]
+        s[~inside] = -np.inf  # no mark outside the lattice
+        for start, segs in zip(batch, _viterbi_chunks(s, model), strict=True):
+            chunks.append([Segment(g.start + start, g.end + start, g.is_mark, g.kind, g.node)
+                           for g in segs])
+    segments = chunks[0] if len(chunks) == 1 else _stitch(chunks, own, context, model)
+    if not segments:
+        return [], 0.0
+    return segments, _path_score(segments, s_mark, model)
+
+
+def _characters(segments: list[Segment]) -> list[tuple[list[Segment], Segment | None]]:
+    """A decode cut into characters: their marks and element gaps, and the gap after."""
+    out: list[tuple[list[Segment], Segment | None]] = []
+    current: list[Segment] = []
+    for seg in segments:
+        if seg.is_mark or seg.kind == ELEMENT:
+            current.append(seg)
+        else:
+            out.append((current, seg))
+            current = []
+    if current:
+        out.append((current, None))
+    return out
+
+
+def _stitch(chunks: list[list[Segment]], own: int, context: int, model: _Model
+            ) -> list[Segment]:
+    """One decode from chunks decoded apart (see :func:`viterbi`)."""
+    kept: list[tuple[list[Segment], Segment | None, int]] = []
+    lo = -math.inf
+    for c, segs in enumerate(chunks):
+        chars = _characters(segs)
+        hi = math.inf
+        if c < len(chunks) - 1:
+            seam = (c + 1) * own
+            gaps = [g for _, g in chars if g is not None
+                    and abs(0.5 * (g.start + g.end) - seam) <= context / 2]
+            if gaps:
+                best = min(gaps, key=lambda g: abs(0.5 * (g.start + g.end) - seam))
+                hi = 0.5 * (best.start + best.end)
+            else:
+                hi = seam
+        for marks, gap in chars:
+            begin = marks[0].start
+            if lo <= begin < hi and (not kept or begin > kept[-1][0][-1].end):
+                kept.append((marks, gap, c))
+        lo = hi
+    out: list[Segment] = []
+    for i, (marks, gap, c) in enumerate(kept):
+        out.extend(marks)
+        if i + 1 == len(kept):
+            break
+        nxt = kept[i + 1][0][0]
+        if gap is not None and kept[i + 1][2] == c and gap.end == nxt.start:
+            out.append(gap)
+            continue
+        # a seam: the gap between the chunks' characters, classed by its length
+        d = nxt.start - marks[-1].end
+        ch = np.interp(d, model.d_ch, model.lp_ch, left=-np.inf, right=-np.inf)
+        wd = np.interp(d, model.d_wd, model.lp_wd, left=-np.inf, right=-np.inf)
+        kind = WORD if (wd > ch or d > model.d_wd[-1]) else CHARACTER
+        out.append(Segment(marks[-1].end, nxt.start, False, kind, 0))
+    return out
+
+
+def _path_score(segments: list[Segment], s_mark: np.ndarray, model: _Model) -> float:
+    """Score of a decode as :func:`viterbi` counts it."""
+    tree = _tree()
+    total = 0.0
+    for seg in segments:
+        d = seg.end - seg.start
+        if seg.is_mark:
+            j = int(np.clip(d - model.d_mark[0], 0, model.d_mark.size - 1))
+            total += float(s_mark[seg.end, j, seg.kind])
+            continue
+        table = {ELEMENT: (model.d_el, model.lp_el), CHARACTER: (model.d_ch, model.lp_ch),
+                 WORD: (model.d_wd, model.lp_wd)}[seg.kind]
+        if seg.kind == WORD and d > table[0][-1]:
+            total += PAUSE_LOG_P
+        else:
+            total += float(np.interp(d, table[0], table[1]))
+    for marks, _ in _characters(segments):
+        total += float(tree.log_prior[marks[-1].node])
+    return total
+
+
+def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
+    """Viterbi over several chunks at once: ``s_chunk`` (chunks, steps, durations, 2).
+
+    The forward pass keeps only the best scores, time last so that every maximum runs
+    over contiguous memory; the back-track finds again the few choices it needs.
+    """
+    tree = _tree()
+    n_c, n_t = s_chunk.shape[:2]
+    d_mark, d_el, d_ch, d_wd = model.d_mark, model.d_el, model.d_ch, model.d_wd
+    lp_el = model.lp_el.astype(np.float32)
+    lp_ch = model.lp_ch.astype(np.float32)
+    lp_wd = model.lp_wd.astype(np.float32)
+    p_min, block, pad = model.p_min, model.block, model.pad
     n_nodes = len(tree.prefix)
     inner = np.flatnonzero(tree.internal & (np.arange(n_nodes) > 0))  # element gap states
     n_in = inner.size
     full = np.flatnonzero(tree.complete)
-    prior = tree.log_prior[full].astype(np.float32)
+    prior = tree.log_prior[full].astype(np.float32)[None, :, None]
     mark_nodes = np.arange(1, n_nodes)
     n_dot = int(np.count_nonzero(~tree.dash[mark_nodes]))
     assert not tree.dash[1 : 1 + n_dot].any() and tree.dash[1 + n_dot :].all()
@@ -394,89 +542,101 @@ def viterbi(lat: _Lattice, track: _Track, durations: Durations) -> tuple[list[Se
     par = gap_pos[tree.parent[mark_nodes]]
     rows = pad + n_t
     neg = np.float32(-np.inf)
-    m_inner = np.full((rows, n_in), neg, dtype=np.float32)  # a mark reached an inner node
-    g_par = np.full((rows, n_nodes - 1), neg, dtype=np.float32)  # a gap at each node's parent
-    c_score = np.full(rows, neg, dtype=np.float32)  # a character was completed
-    c_best = np.full(rows, neg, dtype=np.float32)  # running maximum of c_score, for pauses
-    c_best_at = np.zeros(rows, dtype=np.int64)
-    m_arg = np.zeros((rows, n_nodes - 1), dtype=np.int16)
-    g_arg = np.zeros((rows, n_in), dtype=np.int16)
-    root_from = np.zeros(rows, dtype=np.int8)  # 0 start, 1 character gap, 2 word gap, 3 pause
-    root_len = np.zeros(rows, dtype=np.int64)  # steps of that gap
-    c_arg = np.zeros(rows, dtype=np.int16)
+    # best scores of paths ending at each step (the last axis) with:
+    m_all = np.full((n_c, n_nodes - 1, rows), neg, dtype=np.float32)  # a mark at the node
+    m_inner = np.full((n_c, n_in, rows), neg, dtype=np.float32)  # the same, inner nodes
+    g_par = np.full((n_c, n_nodes - 1, rows), neg, dtype=np.float32)  # a gap at the parent
+    c_score = np.full((n_c, rows), neg, dtype=np.float32)  # a completed character
+    c_best = np.full((n_c, rows), neg, dtype=np.float32)  # its running maximum, for pauses
+    c_best_at = np.zeros((n_c, rows), dtype=np.int64)
     lane = np.arange(block)
     off_el = lane[:, None] - d_el[None, :]
     off_ch = lane[:, None] - d_ch[None, :]
     off_wd = lane[:, None] - d_wd[None, :]
     off_mark = lane[:, None] - d_mark[None, :]
-    g_all = np.empty((block, n_in + 1), dtype=np.float32)
-    options = np.empty((4, block), dtype=np.float32)
+    g_all = np.empty((n_c, n_in + 1, block), dtype=np.float32)
+    options = np.empty((4, n_c, block), dtype=np.float32)
     options[0] = 0.0
     inner_col = inner - 1
     full_col = full - 1
+    s_dot = np.ascontiguousarray(s_chunk[..., 0])[:, None]  # (chunks, 1, steps, durations)
+    s_dash = np.ascontiguousarray(s_chunk[..., 1])[:, None]
     for t0 in range(pad, rows, block):
         b = min(block, rows - t0)
         r = slice(t0, t0 + b)
-        lanes = lane[:b]
         # gaps: element gaps keep the node; the root takes character and word gaps, pauses
-        cand = np.take(m_inner, t0 + off_el[:b], axis=0) + lp_el
-        g_arg[r] = cand.argmax(axis=1)
-        g_all[:b, 1:] = cand.max(axis=1)
-        ch = np.take(c_score, t0 + off_ch[:b]) + lp_ch
-        wd = np.take(c_score, t0 + off_wd[:b]) + lp_wd
-        j_ch, j_wd = ch.argmax(axis=1), wd.argmax(axis=1)
-        options[1, :b] = ch[lanes, j_ch]
-        options[2, :b] = wd[lanes, j_wd]
-        options[3, :b] = c_best[t0 - p_min : t0 - p_min + b] + PAUSE_LOG_P
-        how = options[:, :b].argmax(axis=0)
-        root_from[r] = how
-        root_len[r] = np.where(how == 1, d_ch[j_ch], d_wd[j_wd])
-        g_all[:b, 0] = options[how, lanes]
-        g_par[r] = g_all[:b, par]
+        g_all[:, 1:, :b] = (np.take(m_inner, t0 + off_el[:b], axis=2) + lp_el).max(axis=3)
+        options[1, :, :b] = (np.take(c_score, t0 + off_ch[:b], axis=1) + lp_ch).max(axis=2)
+        options[2, :, :b] = (np.take(c_score, t0 + off_wd[:b], axis=1) + lp_wd).max(axis=2)
+        options[3, :, :b] = c_best[:, t0 - p_min : t0 - p_min + b] + PAUSE_LOG_P
+        g_all[:, 0, :b] = options[:, :, :b].max(axis=0)
+        g_par[:, :, r] = g_all[:, par, :b]
         # marks: one step down the tree from the node the gap before them left
-        cand = np.take(g_par, t0 + off_mark[:b], axis=0)
-        s = s_mark[t0 - pad : t0 - pad + b]
-        cand[:, :, :n_dot] += s[:, :, 0:1]
-        cand[:, :, n_dot:] += s[:, :, 1:2]
-        m_arg[r] = cand.argmax(axis=1)
-        m = cand.max(axis=1)
-        m_inner[r] = m[:, inner_col]
-        done = m[:, full_col] + prior
-        j = done.argmax(axis=1)
-        c = done[lanes, j]
-        c_score[r] = c
-        c_arg[r] = full[j]
-        run = np.maximum.accumulate(np.concatenate([c_best[t0 - 1 : t0], c]))[1:]
-        c_best[r] = run
-        c_best_at[r] = np.maximum.accumulate(np.where(c >= run, t0 + lanes, c_best_at[t0 - 1]))
-    end = int(np.argmax(c_score))
-    score = float(c_score[end])
-    if not np.isfinite(score) or score <= 0.0:
-        return [], 0.0
-    # back-track
+        cand = np.take(g_par, t0 + off_mark[:b], axis=2)  # (chunks, nodes, b, durations)
+        cand[:, :n_dot] += s_dot[:, :, t0 - pad : t0 - pad + b]
+        cand[:, n_dot:] += s_dash[:, :, t0 - pad : t0 - pad + b]
+        m = cand.max(axis=3)
+        m_all[:, :, r] = m
+        m_inner[:, :, r] = m[:, inner_col]
+        c = (m[:, full_col] + prior).max(axis=1)
+        c_score[:, r] = c
+        run = np.maximum.accumulate(np.concatenate([c_best[:, t0 - 1 : t0], c], axis=1),
+                                    axis=1)[:, 1:]
+        c_best[:, r] = run
+        c_best_at[:, r] = np.maximum.accumulate(
+            np.where(c >= run, t0 + lane[:b], c_best_at[:, t0 - 1 : t0]), axis=1)
+    out = []
+    for ci in range(n_c):
+        end = int(np.argmax(c_score[ci]))
+        if not np.isfinite(c_score[ci, end]) or c_score[ci, end] <= 0.0:
+            out.append([])
+            continue
+        out.append(_back_track(end, model, s_chunk[ci], m_all[ci], m_inner[ci], g_par[ci],
+                               c_score[ci], c_best[ci], c_best_at[ci], gap_pos, full, prior))
+    return out
+
+
+def _back_track(end, model, s, m_all, m_inner, g_par, c_score, c_best, c_best_at, gap_pos,
+                full, prior) -> list[Segment]:
+    """The best path that ends with a character at step ``end``, choice by choice."""
+    tree = _tree()
+    pad = model.pad
     segments: list[Segment] = []
     state, t, node = "c", end, 0
     while True:
         if state == "c":
-            node, state = int(c_arg[t]), "m"
+            node = int(full[np.argmax(m_all[full - 1, t] + prior[0, :, 0])])
+            state = "m"
         elif state == "m":
-            d = int(d_mark[m_arg[t, node - 1]])
-            segments.append(Segment(t - d - pad, t - pad, True, int(tree.dash[node]), node))
-            t, node, state = t - d, int(tree.parent[node]), "g"
+            d = model.d_mark
+            j = int(np.argmax(g_par[node - 1, t - d] + s[t - pad, :, int(tree.dash[node])]))
+            segments.append(Segment(t - int(d[j]) - pad, t - pad, True, int(tree.dash[node]),
+                                    node))
+            t, node, state = t - int(d[j]), int(tree.parent[node]), "g"
         elif node:  # element gap
-            d = int(d_el[g_arg[t, gap_pos[node] - 1]])
-            segments.append(Segment(t - d - pad, t - pad, False, ELEMENT, node))
-            t, state = t - d, "m"
+            d = model.d_el
+            j = int(np.argmax(m_inner[gap_pos[node] - 1, t - d] + model.lp_el))
+            segments.append(Segment(t - int(d[j]) - pad, t - pad, False, ELEMENT, node))
+            t, state = t - int(d[j]), "m"
         else:
-            how = int(root_from[t])
+            ch = c_score[t - model.d_ch] + model.lp_ch
+            wd = c_score[t - model.d_wd] + model.lp_wd
+            options = [0.0, float(ch.max()), float(wd.max()),
+                       float(c_best[t - model.p_min]) + PAUSE_LOG_P]
+            how = int(np.argmax(np.array(options, dtype=np.float32)))
             if how == 0:
                 break
-            before = int(c_best_at[t - p_min]) if how == 3 else t - int(root_len[t])
+            if how == 3:
+                before = int(c_best_at[t - model.p_min])
+            elif how == 1:
+                before = t - int(model.d_ch[np.argmax(ch)])
+            else:
+                before = t - int(model.d_wd[np.argmax(wd)])
             segments.append(Segment(before - pad, t - pad, False,
                                     CHARACTER if how == 1 else WORD, 0))
             t, state = before, "c"
     segments.reverse()
-    return segments, score
+    return segments
 
 
 # ---------------------------------------------------------------------------------------
