@@ -66,7 +66,9 @@ MAX_ZOOM_CHARS = 48
 #: Transmissions shorter than this (stray characters in pauses) get zooms last.
 MIN_ZOOM_CHARS = 5
 #: Most zoom panels in one figure.
-MAX_ZOOMS = 6
+MAX_ZOOMS = 8
+#: Characters less sure than this are written in italics.
+LOW_CONFIDENCE = 0.5
 #: Longest decoded text in the title, characters.
 MAX_TITLE_CHARS = 110
 #: Figure formats, by file suffix.
@@ -623,7 +625,7 @@ def _write_characters(ax: Axes, result: Reception, first: int, last: int) -> Non
         else:
             ax.text(x, 0.86, c.char, transform=tx, ha="center", va="bottom", fontsize=size,
                     color=COLOURS["black"], gid="character",
-                    fontstyle="italic" if c.confidence < 0.5 else "normal")
+                    fontstyle="italic" if c.confidence < LOW_CONFIDENCE else "normal")
 
 
 # ---------------------------------------------------------------------------------------
@@ -741,6 +743,8 @@ def _title(result: Reception) -> str:
     second = f"text: {_plain(text)}" if text else "text: (nothing decoded)"
     if result.n_unknown:
         second += f"    ({result.n_unknown} unknown, shown as {PLACEHOLDER})"
+    if any(c.confidence < LOW_CONFIDENCE for c in result.characters):
+        second += f"    (in italics: characters of confidence under {LOW_CONFIDENCE:g})"
     lines = [first, second]
     said = list(result.warnings) + list(result.notes)
     if said:

@@ -343,15 +343,17 @@ def test_cli_plot_option_writes_one_figure_per_file(tmp_path):
 def test_zooms_on_one_long_transmission_cut_at_words_and_reach_its_end():
     from okdecode.text import Character
 
-    # 300 characters in words of five at 20 WPM (a dot of 60 ms), no pause among them
+    # words of five at 20 WPM (a dot of 60 ms), no pause among them, enough for more
+    # stretches than there are zooms
+    n = 2 * plot.MAX_ZOOMS * plot.MAX_ZOOM_CHARS
     chars, t = [], 1.0
-    for k in range(300):
+    for k in range(n):
         chars.append(Character(char="E", pattern=".", start_s=t, end_s=t + 0.06,
                                confidence=0.9, word_start=k % 5 == 0))
         t += 0.06 + (0.42 if k % 5 == 4 else 0.18)  # ITU-R M.1677-1: gaps of 7 and 3 dots
     bare = report.empty(file="long.wav", duration_s=t + 1.0, rate_hz=8000.0, channel=0,
                         decoder="threshold", warnings=[], notes=[])
-    result = dataclasses.replace(bare, text="E" * 300, characters=tuple(chars),
+    result = dataclasses.replace(bare, text="E" * n, characters=tuple(chars),
                                  timing=dataclasses.replace(bare.timing, unit_ms=60.0))
     fig = plot.plot_reception(result)
     spans = []
@@ -360,7 +362,7 @@ def test_zooms_on_one_long_transmission_cut_at_words_and_reach_its_end():
             " to ")
         spans.append((int(first) - 1, int(last)))
     assert len(spans) == plot.MAX_ZOOMS
-    assert spans[0][0] == 0 and spans[-1][1] == 300
+    assert spans[0][0] == 0 and spans[-1][1] == n
     for a, b in spans:
         assert 0 < b - a <= plot.MAX_ZOOM_CHARS
         assert chars[a].word_start
