@@ -23,8 +23,8 @@ from .capture import Capture, from_array, open_capture
 from .errors import ParameterError
 
 DECODERS = ("threshold",)
-#: Filter lengths tried before the speed is known, s (they suit about 8 to 60 WPM).
-FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096)
+#: Filter lengths tried before the speed is known, s (they suit about 5 to 60 WPM).
+FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096, 0.192)
 #: Length of the stretch of a long recording on which the filter length is chosen, s.
 SELECT_SPAN_S = 120.0
 #: A keyed carrier spread wider than this is taken for a pulsed (spark) one, Hz. On-off

@@ -7,7 +7,9 @@ Method
 1 or 3 units or longer, with a capped squared error so that outliers (noise, pauses)
 weigh little. It is then refined from the start-to-start time of a dot and the space
 after it inside a character, which is 2 units whatever the keying weight or the
-threshold's bias (both lengthen the mark by as much as they shorten the space).
+threshold's bias (both lengthen the mark by as much as they shorten the space), and,
+once every mark and gap has its class, by a least-squares fit of all start-to-start
+and end-to-end intervals inside words (:func:`_fit_unit`), which uses every edge.
 
 *Speed.* ``wpm = 1.2 / u`` by the PARIS standard word of 50 units (common practice;
 ITU-R M.1677-1 gives the 1:3 and 1:3:7 ratios). Slow changes are followed by a running
@@ -183,6 +185,38 @@ def _confidence(distance: np.ndarray, spread: float) -> np.ndarray:
     return np.array([0.5 * (1 + erf(float(x) / math.sqrt(2))) for x in np.atleast_1d(z)])
 
 
+def _fit_unit(start: np.ndarray, end: np.ndarray, is_dash: np.ndarray,
+              gap_class: np.ndarray, *, farnsworth: bool) -> float | None:
+    """Least-squares unit from every edge inside words, s (module notes).
+
+    From one mark to the next inside a word, start to start spans the first mark and
+    the gap, and end to end the gap and the second mark; either interval is free of
+    the keying weight and of the threshold's bias, which move both of its edges alike.
+    With a dot of u, a dash of v (v = 3 u by the standard, but a fist may differ) and
+    gaps of 1 or 3 units, each interval is ``a u + b v`` for known a and b, and u, v
+    follow by least squares, with intervals more than 4 robust deviations off dropped.
+    Character gaps join in unless Farnsworth spacing stretches them.
+    """
+    ok = (gap_class == ELEMENT) | ((gap_class == CHARACTER) & (not farnsworth))
+    i = np.flatnonzero(ok)
+    if i.size < 3:
+        return None
+    g = np.where(gap_class[i] == ELEMENT, 1.0, 3.0)
+    dot0, dash0 = (~is_dash[i]).astype(float), is_dash[i].astype(float)
+    dot1, dash1 = (~is_dash[i + 1]).astype(float), is_dash[i + 1].astype(float)
+    a = np.concatenate([np.stack([dot0 + g, dash0], axis=1),
+                        np.stack([g + dot1, dash1], axis=1)])
+    y = np.concatenate([start[i + 1] - start[i], end[i + 1] - end[i]])
+    keep = np.ones(y.size, dtype=bool)
+    for _ in range(2):
+        coef, *_ = np.linalg.lstsq(a[keep], y[keep], rcond=None)
+        resid = y - a @ coef
+        mad = float(np.median(np.abs(resid[keep]))) or 1e-12
+        keep = np.abs(resid) <= 4 * 1.4826 * mad
+    u = float(coef[0])
+    return u if u > 0 else None
+
+
 def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
     """Give every mark and space its class and measure the keying speed.
 
@@ -289,6 +323,8 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
             gap_class[longer] = CHARACTER if lg[longer][0] < math.log(5.0) else WORD
         gap_conf[elem | longer] = np.minimum(
             gap_conf[elem | longer], _confidence(lg[elem | longer] - math.log(2.0), spread))
+    if not wpm:
+        unit = _fit_unit(start, end, is_dash, gap_class, farnsworth=farns) or unit
     return Symbols(start_s=start, end_s=end, is_dash=is_dash, gap_class=gap_class,
                    mark_confidence=mark_conf, gap_confidence=gap_conf, local_dot_s=local,
                    dot_s=unit, dash_dot_ratio=dash_ratio, farnsworth=farns,
