@@ -724,6 +724,14 @@ def _plain(text: str) -> str:
     return text.replace("$", r"\$")
 
 
+def _extra_label(key: str, value: float) -> str:
+    """A figure another stage added (``spark_rate_hz`` -> ``spark rate 612.0 Hz``)."""
+    for suffix, unit in (("_hz", "Hz"), ("_s", "s"), ("_db", "dB")):
+        if key.endswith(suffix):
+            return f"{key[: -len(suffix)].replace('_', ' ')} {value:,.1f} {unit}"
+    return f"{key.replace('_', ' ')} {value:g}"
+
+
 def _title(result: Reception) -> str:
     def num(v: float | None, fmt: str, unit: str) -> str:
         return "n/a" if v is None else f"{v:{fmt}} {unit}"
@@ -736,7 +744,9 @@ def _title(result: Reception) -> str:
              + f"    {num(result.wpm, '.1f', 'WPM')}"
              + (f" (overall {result.farnsworth_wpm:.1f})"
                 if result.farnsworth_wpm is not None else "")
-             + f"    {result.duration_s:.1f} s")
+             + f"    {result.duration_s:.1f} s"
+             + "".join(f"    {_extra_label(k, v)}" for k, v in result.extra.items()
+                       if isinstance(v, (int, float)) and not isinstance(v, bool)))
     text = result.text
     if len(text) > MAX_TITLE_CHARS:
         text = text[: MAX_TITLE_CHARS - 1].rstrip() + "…"

@@ -381,3 +381,13 @@ def test_steady_carrier_is_marked_as_rejected():
     # within one search bin of the generator's frequency
     assert any(abs(f - 1500.0) <= result.spectrum.bin_hz for f in steady), steady
     assert "steady.wav: no keyed signal found" in all_texts(fig)
+
+
+def test_title_carries_the_other_stages_figures():
+    bare = report.empty(file="spark.wav", duration_s=3.0, rate_hz=8000.0, channel=0,
+                        decoder="threshold", warnings=[], notes=[])
+    result = dataclasses.replace(bare, extra={"spark_rate_hz": 612.0, "ringing_hz": 1.453e6,
+                                              "unmeasured_hz": None})
+    title = plot.plot_reception(result)._suptitle.get_text()
+    assert "spark rate 612.0 Hz" in title and "ringing 1,453,000.0 Hz" in title
+    assert "unmeasured" not in title
