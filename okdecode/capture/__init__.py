@@ -25,9 +25,10 @@ BLOCK_LEN = 1 << 18
 class Capture:
     """A recording: its rate, shape and a way to read it block by block.
 
-    ``blocks()`` yields arrays of shape ``(n, n_channels)``, float64 for real
-    recordings and complex128 for I/Q, with finite values (a reader raises
-    :class:`CaptureError` on NaN or infinity when it meets them).
+    ``blocks()`` yields arrays of shape ``(n, n_channels)``, float32 or float64 for real
+    recordings and complex64 or complex128 for I/Q, at full scale 1.0 where the format
+    has one, with finite values (a reader raises :class:`CaptureError` on NaN or infinity
+    when it meets them).
     """
 
     source: str  # the file name as given, or "<array>", for messages
@@ -143,8 +144,9 @@ AUDIO_EXTENSIONS = (".wav", ".wave", ".flac", ".ogg", ".oga", ".opus", ".aif", "
                     ".au", ".snd", ".w64", ".rf64", ".caf")
 #: Extensions of text traces (oscilloscope and logger exports).
 TRACE_EXTENSIONS = (".csv", ".tsv", ".txt", ".asc", ".prn")
-#: SigMF recordings: a metadata and dataset pair, or an archive.
-SIGMF_SUFFIXES = (".sigmf-meta", ".sigmf-data", ".sigmf")
+#: SigMF recordings: a metadata and dataset pair, or an archive (compressed or not).
+SIGMF_SUFFIXES = (".sigmf-meta", ".sigmf-data", ".sigmf", ".sigmf.gz", ".sigmf.xz",
+                  ".sigmf.bz2")
 #: Leading bytes of formats told by their content when the name says nothing.
 _AUDIO_MAGIC = (b"RIFF", b"RIFX", b"RF64", b"BW64", b"fLaC", b"OggS", b"FORM", b".snd")
 _NPY_MAGIC = b"\x93NUMPY"

@@ -63,7 +63,8 @@ def read_sigmf(path: Path, *, source: str, iq_format: str | None = None,
     Parameters
     ----------
     path : Path
-        The ``.sigmf-meta`` or ``.sigmf-data`` file of a pair, or a ``.sigmf`` archive.
+        The ``.sigmf-meta`` or ``.sigmf-data`` file of a pair, or a ``.sigmf`` archive
+        (also ``.sigmf.gz``, ``.sigmf.xz``, ``.sigmf.bz2``).
     source : str
         Name used in messages.
     iq_format : str, optional
@@ -84,7 +85,7 @@ def read_sigmf(path: Path, *, source: str, iq_format: str | None = None,
         missing, the dataset's size does not fit the datatype, or there is no rate.
     """
     name = path.name.lower()
-    if name.endswith(ARCHIVE_EXT):
+    if name.endswith((ARCHIVE_EXT, ".sigmf.gz", ".sigmf.xz", ".sigmf.bz2")):
         meta, data = _open_archive(path, source)
     else:
         meta, data = _open_pair(path, source)
@@ -394,7 +395,7 @@ def write_annotations(recording: Capture | str | PathLike, out_path: str | PathL
         raise ParameterError(cap.source, f"{cap.kind} recordings have no SigMF description "
                              "to annotate", expected="a SigMF or raw I/Q recording")
     inputs = [cap.metadata.get("path"), cap.metadata.get("data_path")]
-    if cap.kind == "sigmf" and not str(cap.metadata["path"]).lower().endswith(ARCHIVE_EXT):
+    if cap.kind == "sigmf" and str(cap.metadata["path"]).lower().endswith((META_EXT, DATA_EXT)):
         sigmf = _library(source)
         inputs.append(sigmf.sigmffile.get_sigmf_filenames(cap.metadata["path"])["meta_fn"])
     if out.exists() and any(p is not None and Path(p).exists() and out.samefile(p)

@@ -45,6 +45,8 @@ SNIFF_LINES = 400
 SPILL_BYTES = 1 << 27
 #: Candidate separators, in order of preference; " " stands for runs of blanks.
 SEPARATORS = (",", ";", "\t", " ")
+#: What a blank line may hold.
+_BLANK = " \t\r"
 #: Stand-in separator for fields that are all quoted (a control character no export uses).
 _UNIT_SEP = "\x1f"
 
@@ -138,16 +140,16 @@ def sniff(head: bytes, *, at_eof: bool, source: str) -> Layout:
     if not at_eof or len(raw_lines) > SNIFF_LINES:
         raw_lines = raw_lines[:-1]  # cut off in the middle, or beyond the lines sniffed
         at_eof = False
-    if not raw_lines or (len(raw_lines) == 1 and not raw_lines[0].strip()):
+    if not raw_lines or (len(raw_lines) == 1 and not raw_lines[0].strip(_BLANK.encode())):
         raise CaptureError(source, "no complete line in the first "
                            f"{len(head)} bytes", expected="a text trace, one sample per line")
     lines = [ln.decode("utf-8", errors="replace").rstrip("\r") for ln in raw_lines]
     best = None
     for rank, sep in enumerate(SEPARATORS):
-        split = [_line_fields(t, sep) if t.strip() else None for t in lines]
+        split = [_line_fields(t, sep) if t.strip(_BLANK) else None for t in lines]
         numeric = [f is not None and len(f) > 0 and all(_number(x) is not None for x in f)
                    for f in split]
-        filled = [i for i, t in enumerate(lines) if t.strip()]
+        filled = [i for i, t in enumerate(lines) if t.strip(_BLANK)]
         for k, i in enumerate(filled):
             if not numeric[i]:
                 continue
@@ -167,7 +169,7 @@ def sniff(head: bytes, *, at_eof: bool, source: str) -> Layout:
                            "semicolons, tabs or blanks")
     _, sep, start, split = best
     n_fields = len(split[start])
-    filled = [i for i, t in enumerate(lines) if t.strip()]
+    filled = [i for i, t in enumerate(lines) if t.strip(_BLANK)]
     before = [i for i in filled if i < start]
     header = before[-1] if before and split[before[-1]] is not None and len(
         split[before[-1]]) == n_fields else None
@@ -187,8 +189,7 @@ def sniff(head: bytes, *, at_eof: bool, source: str) -> Layout:
     run = [split[i] for i in filled if i >= start][:64]
     raw_run = [lines[i] for i in filled if i >= start][:64]
     quoted = any('"' in t for t in raw_run)
-    all_quoted = quoted and sep != " " and all(
-        all(part.strip(" \t\r").startswith('"') for part in _raw_fields(t, sep)) for t in raw_run)
+    all_quoted = quoted and sep != " " and all(_all_quoted(t, sep) for t in raw_run)
     decimal_comma = any("," in f for fields in run if fields for f in fields)
     trailing_sep = sep != " " and any(t.rstrip(" \t\r").endswith(sep) for t in raw_run)
     # the fast path cannot see a separator inside quotes unless every field is quoted, nor
@@ -206,11 +207,11 @@ def sniff(head: bytes, *, at_eof: bool, source: str) -> Layout:
                   metadata=tuple(lines[i] for i in filled if i < meta_end))
 
 
-def _raw_fields(text: str, sep: str) -> list[str]:
-    parts = text.rstrip(" \t\r")
-    if parts.endswith(sep):
-        parts = parts[: -len(sep)]
-    return parts.split(sep) if sep in parts else [parts]
+def _all_quoted(text: str, sep: str) -> bool:
+    """Whether every field of a line is in quotes (a separator may end the line)."""
+    field = r'\s*"[^"]*"\s*'
+    return re.fullmatch(f"{field}(?:{re.escape(sep)}{field})*(?:{re.escape(sep)}\\s*)?",
+                        text) is not None
 
 
 def _looks_like_units(fields: Sequence[str]) -> bool:
@@ -316,6 +317,8 @@ def _fast_parse(chunk: bytes, layout: Layout, n_rows: int) -> np.ndarray | None:
     n = layout.n_fields
     work = chunk
     sep = layout.sep.encode()
+    if layout.trailing_sep:
+        work = work.replace(sep + b"\r\n", b"\n").replace(sep + b"\n", b"\n")
     if layout.all_quoted:
         work = work.replace(b'"' + sep + b'"', _UNIT_SEP.encode())
         sep = _UNIT_SEP.encode()
@@ -323,8 +326,6 @@ def _fast_parse(chunk: bytes, layout: Layout, n_rows: int) -> np.ndarray | None:
         work = work.replace(b'"', b"")
     if layout.decimal_comma:
         work = work.replace(b",", b".")
-    if layout.trailing_sep:
-        work = work.replace(sep + b"\r\n", b"\n").replace(sep + b"\n", b"\n")
     if layout.sep == " ":
         # fields start after blanks; every line must have n of them
         u = np.frombuffer(work, dtype=np.uint8)
@@ -371,7 +372,7 @@ def _parse_lines(chunk: bytes, layout: Layout, first_line: int, *, source: str
     for k, raw in enumerate(chunk.split(b"\n")[:-1]):
         line_no = first_line + k
         text = raw.decode("utf-8", errors="replace").rstrip("\r")
-        if not text.strip(" \t\r"):
+        if not text.strip(_BLANK):
             continue
         fields = _line_fields(text, layout.sep)
         if fields is None:
