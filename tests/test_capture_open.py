@@ -68,3 +68,13 @@ def test_absurd_options(tmp_path):
         open_capture(tmp_path / "c.cu8", rate_hz=-5)
     with pytest.raises(ParameterError, match=r"c.cu8: centre frequency 'x'"):
         open_capture(tmp_path / "c.cu8", rate_hz=1e6, center_hz="x")
+
+
+def test_str_and_path_open_the_same(tmp_path, rng):
+    z = (rng.normal(size=64) + 1j * rng.normal(size=64)).astype(np.complex64) / 4
+    z.tofile(tmp_path / "z.cf32")
+    by_str = open_capture(str(tmp_path / "z.cf32"), rate_hz=1e5)
+    by_path = open_capture(tmp_path / "z.cf32", rate_hz=1e5)
+    assert by_str.source == str(tmp_path / "z.cf32")
+    np.testing.assert_array_equal(np.concatenate(list(by_str.blocks())),
+                                  np.concatenate(list(by_path.blocks())))

@@ -117,6 +117,7 @@ def test_headerless_rising_first_column_is_time(tmp_path, rng):
     text = "".join(f"{x:.3f},{y:.4f}\n" for x, y in zip(t, a, strict=True))
     cap = open_capture(_write(tmp_path, "plain.csv", text))
     assert cap.rate_hz == pytest.approx(1000.0) and cap.n_channels == 1
+    assert any("taken as time in seconds" in n for n in cap.notes)
 
 
 def test_each_input_kind_reads_the_same(tmp_path, rng):

@@ -580,6 +580,9 @@ def _read(f: IO[bytes], source: str, *, rate_hz: float | None, columns: object) 
         raise CaptureError(source, f"{'only one data row' if n_rows else 'no data rows'} "
                            f"(line {layout.data_line})", expected="at least two samples")
     notes = [_describe(layout, n_rows)]
+    if time_col is not None and layout.header_line is None:
+        notes.append("no header: the first column rises through the first rows, so it is "
+                     "taken as time in seconds")
     rate = _rate(layout, time_col, stats, rate_hz, notes, source)
     return Capture(source=source, rate_hz=rate, n_samples=n_rows, n_channels=len(chosen),
                    is_complex=False, kind="trace", reader=store.reader(),
