@@ -175,7 +175,6 @@ def test_trace_like_samples_figure():
 
 
 def test_csv_trace_figure(tmp_path):
-    pytest.importorskip("okdecode.capture.trace", reason="the CSV trace reader has not landed")
     time_s, volts, truth = trace_like()
     path = tmp_path / "scope_ch1.csv"
     np.savetxt(path, np.column_stack([time_s, volts]), delimiter=",", fmt="%.9g",
