@@ -609,18 +609,27 @@ class Store:
         out = []
         for values in cur:
             row = dict(zip(COLUMN_NAMES, values, strict=True))
-            if wanted is not None and (row["content_hash"], row["settings_hash"]) not in wanted:
-                continue
-            for k in ("warnings", "verification", "decode", "metadata", "capture_metadata",
-                      "settings"):
-                if row[k] is not None:
-                    row[k] = json.loads(row[k])
-            if row["received"] is not None:
-                row["received"] = bool(row["received"])
-            if row["detected"] is not None:
-                row["detected"] = bool(row["detected"])
-            out.append(row)
+            if wanted is None or (row["content_hash"], row["settings_hash"]) in wanted:
+                out.append(_parsed(row))
         return sorted(out, key=_row_order)
+
+    def row(self, key: tuple[str, str]) -> dict | None:
+        """One stored row as a dict, or None."""
+        values = self._conn.execute(f"SELECT {', '.join(COLUMN_NAMES)} FROM results WHERE "
+                                    "content_hash = ? AND settings_hash = ?", key).fetchone()
+        return None if values is None else _parsed(dict(zip(COLUMN_NAMES, values,
+                                                            strict=True)))
+
+
+def _parsed(row: dict) -> dict:
+    for k in ("warnings", "verification", "decode", "metadata", "capture_metadata",
+              "settings"):
+        if row[k] is not None:
+            row[k] = json.loads(row[k])
+    for k in ("received", "detected"):
+        if row[k] is not None:
+            row[k] = bool(row[k])
+    return row
 
 
 def _row_order(row: dict):
@@ -917,7 +926,7 @@ def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | Non
                 store.put(job, outcome)
                 bar.step(job.file)
                 if on_result is not None:
-                    on_result(store.rows([key])[0])
+                    on_result(store.row(key))
         finally:
             bar.close()
         rows = store.rows(keys)
