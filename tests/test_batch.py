@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+import math
 import os
 import re
 import signal
@@ -135,6 +136,23 @@ def test_bad_manifests_say_where(tmp_path, text, match):
     (tmp_path / "m.csv").write_text(text)
     with pytest.raises(ParameterError, match=r"m\.csv: " + match):
         batch.read_manifest(tmp_path / "m.csv")
+
+
+@given(st.text(alphabet=st.sampled_from(list('file,expect,distance_m,channel\n"../ab/1.5x')),
+               max_size=80))
+def test_the_manifest_reader_parses_or_raises_parameter_error(tmp_path_factory, text):
+    folder = tmp_path_factory.mktemp("fuzz")
+    (folder / "m.csv").write_text(text, encoding="utf-8")
+    try:
+        jobs = batch.read_manifest(folder / "m.csv")
+    except ParameterError as err:
+        assert str(err).startswith(f"{folder / 'm.csv'}: ")
+    else:
+        root = folder.resolve()
+        for job in jobs:
+            assert Path(job.path).is_relative_to(root)  # never outside the folder
+            assert job.distance_m is None or math.isfinite(job.distance_m)
+            assert set(job.decode_options) <= {"channel"}
 
 
 def test_a_batch_that_cannot_start_exits_2(tmp_path):
