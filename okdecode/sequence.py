@@ -21,6 +21,14 @@ units, its mean and spread measured from the threshold path's classes and then f
 the first pass of this one, which covers weighting, odd dash/dot ratios, hand-sent
 jitter and Farnsworth spacing.
 
+*Speed.* The threshold path's tracked unit is the start. Below the level where it
+finds the marks, it reads noise as code of an absurd speed; machine-timed code then
+still shows its speed as a spectral line of its rising edges (:func:`line_unit_s`),
+sharp to a fraction of a per cent over a message. Where both are credible and
+disagree, the pass with the higher likelihood decides. Each pass re-measures the unit
+on its decision, from the start-to-start times of a dot and the element gap after it
+(2 units whatever the weighting).
+
 *Evidence.* For a mark from ``t0`` to ``t1`` holding ``L`` baseband samples, the sum
 ``y`` of the baseband over it is the matched filter's output for a rectangular pulse of
 unknown phase. With ``A`` the carrier's amplitude in the baseband, ``N0`` the two-sided
@@ -37,8 +45,9 @@ sum of its marks' ratios plus the log-probabilities of its durations and charact
 
 *Decision.* Viterbi's algorithm [4]_ over the steps gives the most likely sequence;
 since no segment is shorter than ``B`` steps, ``B`` steps at a time are computed
-together. A second pass re-measures speed, amplitude and durations on the first pass's
-decision and decodes again.
+together, and long recordings are cut into overlapping chunks decoded side by side
+(:func:`viterbi`). Where the decision differs from the one its laws were measured on,
+a second pass re-measures speed, amplitude and durations on it and decodes again.
 
 *Confidence.* Each mark's confidence is the probability that it is there (the
 logistic of its ratio) times the probability of its class given its length under the
@@ -932,19 +941,20 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     ratio = line_s / dot_s if line_s else 1.0
     # a threshold path that has lost the signal reads noise as code far too fast or slow
     plausible = PLAUSIBLE_WPM[0] <= 1.2 / dot_s <= PLAUSIBLE_WPM[1]
+    line_track = (np.array([0.0]), np.array([line_s or dot_s]))
     if line_s is None:
         tries.append((thr_track, thr_decision))
     elif not plausible:  # nothing to lose: the line, however weak, is all there is
-        tries.append(((np.array([0.0]), np.array([line_s])), None))
-    elif line_p > LINE_MAX_P:
-        tries.append((thr_track, thr_decision))
-    elif abs(math.log(ratio)) < math.log(1.08):
+        tries.append((line_track, None))
+    elif abs(math.log(ratio)) >= math.log(1.08):
+        # the threshold path's speed and the keying line disagree: the likelier wins
+        tries += [(thr_track, thr_decision), (line_track, None)]
+    elif line_p <= LINE_MAX_P:
         # the same speed: the line's is the sharper measure of it
         scale = line_s / float(np.median(thr_track[1]))
         tries.append(((thr_track[0], thr_track[1] * scale), thr_decision))
     else:
-        # the threshold path's speed and the keying line disagree: the likelier wins
-        tries += [(thr_track, thr_decision), ((np.array([0.0]), np.array([line_s])), None)]
+        tries.append((thr_track, thr_decision))
     best, start = None, None
     for unit_track, decision in tries:
         result = _pass(baseband, t_s, density, unit_track, decision, k)
