@@ -895,3 +895,101 @@ def _power_envelope(baseband: Baseband, n: int, step: int, source: str) -> Envel
                     start_s=baseband.start_s, filter_s=n / baseband.rate_hz,
                     noise_bandwidth_hz=float(baseband.power_bandwidth_hz or 0.0),
                     carrier_hz=baseband.carrier_hz, source=source, noise_sigma=sigma)
+
+
+# ---------------------------------------------------------------------------------------
+# Drift
+
+
+#: Frames of the drift tracker, s: fine enough in frequency (2 Hz), short enough to
+#: follow a drift of tens of hertz over a message.
+DRIFT_FRAME_S = 0.5
+#: Largest change of frequency between tracked frames, Hz per s.
+DRIFT_SLEW_HZ_PER_S = 40.0
+#: A drift smaller than this everywhere is left alone, Hz.
+DRIFT_MIN_HZ = 3.0
+#: A frame shows the carrier when its line stands this far above the frame's median
+#: bin: 15 dB, which noise alone (exponential power, median ln 2 of the mean) passes
+#: with a probability of 1e-9 per bin.
+DRIFT_LINE_OVER_MEDIAN = 30.0
+
+
+def drift_track_hz(baseband: Baseband, *, max_offset_hz: float = 150.0) -> np.ndarray | None:
+    """The carrier's frequency over time, when it drifts, or None when it holds still.
+
+    Parameters
+    ----------
+    baseband : Baseband
+        Carrier near 0 Hz.
+    max_offset_hz : float
+        How far from 0 Hz the carrier may wander, Hz.
+
+    Returns
+    -------
+    ndarray, shape (n,), or None
+        Frequency at each baseband sample, Hz; None when the drift stays under
+        ``DRIFT_MIN_HZ`` or too few frames show the carrier.
+
+    Notes
+    -----
+    Short-time spectra of ``DRIFT_FRAME_S`` (Hann, half overlapping, zero-padded four
+    times) give each frame's strongest line within ``±max_offset_hz``; frames whose line
+    stands less than 15 dB above the frame's median bin are skipped (spaces, pauses).
+    From the strongest frame the track grows both ways, each frame taking its strongest
+    line within the slew allowed since the last accepted one (so a neighbouring
+    station cannot capture it), and a running median of five accepted frames smooths
+    it before it is interpolated to every sample.
+    """
+    from scipy import signal
+
+    z = baseband.samples
+    rate = baseband.rate_hz
+    nper = int(DRIFT_FRAME_S * rate)
+    if z.size < 4 * nper:
+        return None
+    f, t, spec = signal.stft(z, fs=rate, nperseg=nper, noverlap=nper // 2, nfft=4 * nper,
+                             return_onesided=False, boundary=None, padded=False)
+    f = np.fft.fftshift(f)
+    power = np.abs(np.fft.fftshift(spec, axes=0)) ** 2
+    band = np.abs(f) <= max_offset_hz
+    f, power = f[band], power[band]
+    floor = np.median(power, axis=0)
+    peak = np.argmax(power, axis=0)
+    strong = power[peak, np.arange(t.size)] > DRIFT_LINE_OVER_MEDIAN * floor
+    if strong.sum() < 3:
+        return None
+    hop_s = t[1] - t[0]
+    track = np.full(t.size, np.nan)
+    first = int(np.argmax(np.where(strong, power[peak, np.arange(t.size)], 0.0)))
+    track[first] = f[peak[first]]
+    for direction in (1, -1):
+        last_k, last_f = first, track[first]
+        k = first + direction
+        while 0 <= k < t.size:
+            reach = min(DRIFT_SLEW_HZ_PER_S * hop_s * abs(k - last_k), 30.0) + 2.0
+            near = np.abs(f - last_f) <= reach
+            col = np.where(near, power[:, k], 0.0)
+            j = int(np.argmax(col))
+            if col[j] > DRIFT_LINE_OVER_MEDIAN * floor[k]:
+                track[k] = f[j]
+                last_k, last_f = k, f[j]
+            k += direction
+    ok = np.flatnonzero(~np.isnan(track))
+    if ok.size < 3:
+        return None
+    smooth = np.median(np.lib.stride_tricks.sliding_window_view(
+        np.pad(track[ok], 2, mode="edge"), 5), axis=1)
+    if np.max(np.abs(smooth - np.median(smooth))) < DRIFT_MIN_HZ:
+        return None
+    times = baseband.start_s + np.arange(z.size) / rate
+    return np.interp(times, baseband.start_s + t[ok], smooth)
+
+
+def follow(baseband: Baseband, track_hz: np.ndarray) -> Baseband:
+    """The baseband with a drifting carrier held at 0 Hz (phase of the track removed)."""
+    phase = 2 * np.pi * np.cumsum(track_hz) / baseband.rate_hz
+    lo = np.empty(phase.size, dtype=np.complex64)
+    lo.real, lo.imag = np.cos(phase), -np.sin(phase)
+    mean_hz = float(np.mean(track_hz))
+    return replace(baseband, samples=baseband.samples * lo,
+                   carrier_hz=baseband.carrier_hz + mean_hz)

@@ -222,11 +222,56 @@ def find(envelope: Envelope, *, window_s: float = 2.0, hysteresis_db: float = 0.
     empty = np.empty(0)
     if decided is None:
         return Marks(empty, empty, empty, empty, lv, envelope.source)
+    if levels_ is None:
+        for _ in range(2):
+            # decision-directed: each mark found tells the level where it stands, so
+            # a fade is followed mark by mark rather than window by window
+            tracked = _mark_levels(envelope, lv, *decided)
+            if tracked is None:
+                break
+            lv = tracked
+            decided = _decide(envelope, lv, hysteresis_db) or decided
     start_s, end_s = _suppress(*decided, min_mark_s=min_mark_s, min_space_s=min_space_s)
     lvl, snr = _mark_stats(envelope.magnitude, envelope.time_s, start_s, end_s, lv,
                            envelope.rate_hz)
     return Marks(start_s=start_s, end_s=end_s, level=lvl, peak_snr_db=snr, levels=lv,
                  source=envelope.source)
+
+
+def _mark_levels(envelope: Envelope, lv: Levels, start_s: np.ndarray,
+                 end_s: np.ndarray) -> Levels | None:
+    """Levels re-estimated from the marks of a decision, at their centres.
+
+    A mark's level is the mean magnitude over the middle half of it, taken only from
+    marks of 1.5 filter lengths or more: after the moving average those have a
+    plateau at the carrier's level there, while a shorter mark's top is a peak that
+    reaches the level only at one point. Marks not clear of the noise are left out,
+    and a running median over five marks smooths the levels. The noise floor stays as
+    tracked by windows. Returns None with fewer than five usable marks.
+    """
+    x, t = envelope.magnitude, envelope.time_s
+    length = end_s - start_s
+    use = length >= 1.5 * envelope.filter_s
+    lo = np.searchsorted(t, start_s + 0.25 * length)
+    hi = np.searchsorted(t, end_s - 0.25 * length)
+    use &= hi > lo
+    if use.sum() < 5:
+        return None
+    lo, hi = lo[use], hi[use]
+    c = np.concatenate([[0.0], np.cumsum(x)])
+    centre_s = 0.5 * (start_s + end_s)[use]
+    level = (c[hi] - c[lo]) / (hi - lo)
+    sigma = np.interp(centre_s, lv.time_s, lv.sigma)
+    clear = sigma * math.sqrt(2.0 * math.log(1e3))
+    keep = level > clear
+    if keep.sum() < 5:
+        return None
+    centre_s, level, sigma, clear = centre_s[keep], level[keep], sigma[keep], clear[keep]
+    pad = np.pad(level, 2, mode="edge")
+    level = np.median(np.lib.stride_tricks.sliding_window_view(pad, 5), axis=1)
+    noise = sigma * math.sqrt(math.pi / 2.0)
+    threshold = np.maximum(noise + 0.5 * (level - noise), clear)
+    return Levels(time_s=centre_s, noise=noise, mark=level, threshold=threshold, sigma=sigma)
 
 
 def _inside(t: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:

@@ -127,12 +127,17 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
     chan = 0 if chan is None else chan
     base = bb.tune(capture, carrier, channel=chan, wide_half_band_hz=wide_hz,
                    progress=progress)
-    extra = {"spark_rate_hz": None, "ringing_hz": None}
+    extra = {"spark_rate_hz": None, "ringing_hz": None, "drift_hz": None}
     if base.power is None:
         search_bin = spectrum.bin_hz if spectrum is not None else 0.0
         max_off = max(1.0 * search_bin, 25.0) if opts.carrier_hz is None else 40.0
         part, _ = _busiest(base, base.samples, span_s=SELECT_SPAN_S)
         base = bb.shift(base, bb.fine_offset_hz(part, max_offset_hz=max_off))
+        track = bb.drift_track_hz(base)
+        if track is not None:
+            base = bb.follow(base, track)
+            extra["drift_hz"] = round(float(np.ptp(track)), 1)
+            notes.append(f"carrier drifts over {np.ptp(track):.0f} Hz; followed")
     else:
         extra["ringing_hz"] = _round_or_none(best.centroid_hz, 1)
         extra["spark_rate_hz"] = _round_or_none(base.spark_rate_hz, 1)
@@ -250,7 +255,8 @@ def _fit_score(syms: sy.Symbols, decoded: tx.Decoded, filter_s: float) -> float:
                      for c in decoded.characters])
     mismatch = abs(math.log(syms.dot_s / filter_s))
     # the mean, not the sum: noise let through a short filter makes many characters
-    # whose elements fit no class well
+    # whose elements fit no class well; a decode whose dot is far from the filter's
+    # length is not self-consistent
     return float(conf.mean()) * math.exp(-0.5 * max(mismatch - math.log(2.5), 0.0))
 
 

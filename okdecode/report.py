@@ -267,4 +267,5 @@ def empty(*, file: str, duration_s: float, rate_hz: float, channel: int | None,
                      channel=channel, rate_hz=rate_hz, decoder=decoder,
                      warnings=tuple(warnings), notes=tuple(notes), spectrum=spectrum,
                      baseband=baseband, envelope=envelope, marks=marks,
-                     extra={"spark_rate_hz": None, "ringing_hz": None, **(extra or {})})
+                     extra={"spark_rate_hz": None, "ringing_hz": None, "drift_hz": None,
+                            **(extra or {})})
