@@ -187,3 +187,16 @@ def test_refine_without_speed_returns_inputs():
     rec = synth("", duration_s=3.0, cn0_dbhz=30.0, seed=51)
     r = decode_array(rec.samples, rec.rate_hz)
     assert sequence.decode_reception_text(r) == r.text == ""
+
+
+def test_chunked_decode_equals_one_pass(monkeypatch):
+    # a message several chunks long, weak enough that the decision is not trivial
+    sent = " ".join(["XQ7ZB DE KT4RM 5NN TU QRV 73"] * 4)
+    rec = synth(sent, wpm=25, cn0_dbhz=25.0, seed=61)
+    r = decode_array(rec.samples, rec.rate_hz, carrier_hz=rec.truth.scenario.carrier_hz)
+    # PARIS = 50 units: dot_s = 1.2 / WPM; the recording spans more than two chunks
+    assert r.duration_s / (1.2 / 25) > 2 * sequence.CHUNK_UNITS
+    chunked = sequence.decode_reception_text(r)
+    monkeypatch.setattr(sequence, "CHUNK_UNITS", 10**6)
+    whole = sequence.decode_reception_text(r)
+    assert chunked == whole
