@@ -17,6 +17,8 @@ from __future__ import annotations
 import math
 import numbers
 import operator
+import sys
+import types
 from dataclasses import KW_ONLY, dataclass
 from pathlib import Path
 
@@ -961,3 +963,19 @@ def synth_file(
     except (soundfile.LibsndfileError, OSError) as err:
         raise ParameterError(source, f"cannot be written ({err})") from err
     return synthesizer.truth
+
+
+class _CallableModule(types.ModuleType):
+    """This module, callable as its own :func:`synth`.
+
+    The package offers ``okdecode.synth`` as the generator function, and the name is
+    also this module's; once the module is imported, the package attribute is the
+    module. Calling the module calls the function, so both spellings hold (module
+    ``__class__`` assignment, Python 3.5 and later).
+    """
+
+    def __call__(self, message: str = "", **options: object) -> Recording:
+        return synth(message, **options)
+
+
+sys.modules[__name__].__class__ = _CallableModule
