@@ -33,7 +33,7 @@ false-alarm probability of the search is the Sidak correction ``1 - (1 - p)^N`` 
 an effective number of tests ``N``, counted on the coarse grid: the statistic
 decorrelates when the template moves by about one sub-window, so start times count one
 per sub-window, and each coarse speed step (which moves the template's ends by ``4 e``
-dots) counts ``3 e m`` tests and each stretch step ``2 e`` (speed and stretch move the
+dots) counts ``4 e m`` tests and each stretch step ``2 e`` (speed and stretch move the
 ends alike, so the second adds less). These factors are a heuristic of this module,
 checked against noise-only trials (``tests/test_detect.py``, ``bench/bench_detection.py``).
 When the carrier itself had to be guessed, ``N`` is multiplied by the number of carrier
@@ -95,7 +95,7 @@ N_REFINE = 4
 #: Effective tests per coarse grid step, per dot of end misalignment (times the
 #: sub-windows per dot for speed), from the correlation of the statistic between grid
 #: points and checked by noise-only trials (bench/bench_detection.py).
-SPEED_TESTS, STRETCH_TESTS = 3.0, 2.0
+SPEED_TESTS, STRETCH_TESTS = 4.0, 2.0
 #: Default false-alarm probability of a detection (the issue's 1 %).
 ALPHA = 0.01
 #: Largest share of the mark cells' excess energy that the space cells may hold.
@@ -382,7 +382,7 @@ def _coarse(energies: CellEnergies, lay: Layout, speeds: np.ndarray, *, max_stre
             continue
         stretches, mpos, spos, last = stretches[fit], mpos[fit], spos[fit], last[fit]
         n_t = stretches.size
-        # effective tests (module notes): start times one per sub-window, 3 e m per
+        # effective tests (module notes): start times one per sub-window, 4 e m per
         # speed step and 2 e per stretch step
         dims = SPEED_TESTS * grid_units * m * (STRETCH_TESTS * grid_units if n_t > 1 else 1.0)
         n_fft = fft.next_fast_len(k)
@@ -603,14 +603,15 @@ def search_capture(capture: Capture, expected: str, *, baseband: bb.Baseband | N
         while len(picked) < n_candidates and any(orders):
             for order, ranking in zip(orders, rankings, strict=True):
                 while order and (not np.isfinite(ranking[order[0]])
-                                 or any(abs(int(order[0]) - q) <= 2 for q in picked)):
+                                 or any(abs(int(order[0]) - q) <= 1 for q in picked)):
                     order.pop(0)
                 if order and len(picked) < n_candidates:
                     picked.append(int(order.pop(0)))
         for b in picked:
             base = bb.tune(capture, float(f[b]), channel=chan)
-            # the carrier lies within half a bin: the peak of a fine spectrum finds it
-            offset = bb.fine_offset_hz(base, max_offset_hz=0.75 * spectrum.bin_hz)
+            # the carrier lies within half a bin of this one or of a neighbour left out
+            # above: the peak of a fine spectrum finds it
+            offset = bb.fine_offset_hz(base, max_offset_hz=1.5 * spectrum.bin_hz)
             hypotheses.append(bb.shift(base, offset))
     if not hypotheses:
         return nothing(alpha=options.get("alpha", ALPHA), carrier_hz=carrier_hz)
