@@ -225,3 +225,17 @@ def test_verify_file_api_matches_decode(wavs):
     v = verify_file(good, "QRV? + 5/9, OK.", detect=False, wpm=20)
     assert v.received and v.detection is None and v.text == canonical("QRV? + 5/9, OK.")
     assert np.isclose(v.to_dict()["wpm"], 20.0, rtol=0.05)
+
+
+def test_cli_weak_message_is_not_received_but_its_keying_is_found(tmp_path):
+    # 17 dB-Hz: about 9 dB below where decoding reaches 5 % CER (bench_detection.py)
+    weak = tmp_path / "weak.wav"
+    msg = "VVV DE XQ7ZB BEACON TEST GRID KN42 73 <AR>"
+    synth_file(weak, msg, wpm=20, cn0_dbhz=17.0, rate_hz=8000.0, seed=6)
+    r = CliRunner().invoke(main, ["verify", str(weak), "--expect", msg])
+    assert r.exit_code == 1
+    assert "NOT received" in r.output and "keying    found" in r.output
+    r = CliRunner().invoke(main, ["verify", str(weak), "--expect", msg, "--json"])
+    det = json.loads(r.stdout)["detection"]
+    assert det["detected"] and det["false_alarm_probability"] < 1e-3
+    assert abs(det["wpm"] - 20.0) < 1.0 and abs(det["cn0_dbhz"] - 17.0) < 2.0
