@@ -733,9 +733,9 @@ def _confidences(segments: list[Segment], mark_llrs: np.ndarray, durations: Dura
 #: Largest chance that noise made the keying line, for :func:`line_unit_s`'s speed to
 #: be used.
 LINE_MAX_P = 0.02
-#: Independent tries per bin of the keying line search: measured on 300 records of noise
-#: alone (25 and 100 s), P(p <= 0.01) was 0.08 to 0.09 with one try per bin, and 0.02
-#: with ten.
+#: Independent tries per bin of the keying line search: measured on 450 records of noise
+#: alone (25 and 100 s) with one try per bin, P(p <= 0.01) was 0.07 to 0.09 and
+#: P(p <= 0.001) 0.017 to 0.027.
 LINE_TRIES = 20.0
 #: Speeds the threshold path may report for its speed to be tried, WPM.
 PLAUSIBLE_WPM = (4.0, 60.0)
@@ -766,19 +766,20 @@ def line_unit_s(baseband: Baseband, *, min_wpm: float = 5.0, max_wpm: float = 50
     the 3 and 7 unit gaps follow a 1 or 3 unit mark), while marks end an odd number of
     units later. The rising edges of the power envelope therefore repeat with a period
     of two dots, and their spectrum holds lines at odd multiples of ``1 / (2 dot)``.
-    The search maximises the power at the first and third of them, which no multiple
-    or fraction of the true period does. Over a whole message the line is far narrower
+    The search maximises the power at the first of them plus that at the third, the
+    latter counted up to the former (``P(f) + min(P(f), P(3f))``), which no multiple or
+    fraction of the true period does. Over a whole message the line is far narrower
     and stronger than any duration histogram, so it holds the speed well below the
     level where the threshold path stops finding the marks. Jitter and speed changes
     smear it, and the threshold path's speed is used.
 
-    For noise alone each bin's power is exponential with a mean ``mu``, so the sum of two
-    bins over ``mu`` is Gamma(2, 1) distributed, exceeded by ``x`` with probability
-    ``(1 + x) e^{-x}``; with ``n`` independent bins in the band (its width times the
-    duration) the chance that the largest exceeds it is at most ``n`` times that (the
-    union bound). Measured on noise alone, that undercounts the tries some twentyfold (the
-    spectrum is padded twofold, and the floor is itself measured), so ``n`` is taken
-    ``LINE_TRIES`` times larger.
+    For noise alone each bin's power is exponential with a mean ``mu``; for two such
+    bins ``X`` and ``Y`` over ``mu``, ``X + min(X, Y)`` exceeds ``x`` with probability
+    ``(1 + x / 2) e^{-x}`` (median 1.146); with ``n`` independent bins in the band (its
+    width times the duration) the chance that the largest exceeds it is at most ``n``
+    times that (the union bound). Measured on noise alone, that undercounts the tries
+    some twentyfold (the spectrum is padded twofold, and the floor is itself measured),
+    so ``n`` is taken ``LINE_TRIES`` times larger.
     """
     z = baseband.samples
     fs = baseband.rate_hz
@@ -799,21 +800,23 @@ def line_unit_s(baseband: Baseband, *, min_wpm: float = 5.0, max_wpm: float = 50
     band = (f >= 1.0 / (2 * 1.2 / min_wpm)) & (f <= 1.0 / (2 * 1.2 / max_wpm))
     if not band.any() or 3 * f[band][-1] >= rate / 2:
         return None, 1.0
-    score = power[band] + np.interp(3 * f[band], f, power)
+    # the third harmonic counts only as far as the first is as strong: a noise peak at a
+    # third of the line's frequency must not borrow the line as its "harmonic"
+    score = power[band] + np.minimum(power[band], np.interp(3 * f[band], f, power))
     i = int(np.argmax(score))
     f0 = float(f[band][i])
     if not 1.03 * f[band][0] < f0 < f[band][-1] / 1.03:  # at an edge: no line inside
         return None, 1.0
     # the floor around the line: the median over half-hertz pieces of the band (the
-    # random keying's own spectrum is not flat), that of Gamma(2, mu) being 1.678 mu
+    # random keying's own spectrum is not flat); see the notes for its 1.146 mu
     n_piece = max(8, int(0.5 / (f[1] - f[0])))
     n_pieces = max(1, score.size // n_piece)
     pieces = score[: n_pieces * n_piece].reshape(n_pieces, n_piece)
     centres = f[band][: n_pieces * n_piece].reshape(n_pieces, n_piece).mean(axis=1)
-    mu = np.interp(f0, centres, np.median(pieces, axis=1)) / 1.678
+    mu = np.interp(f0, centres, np.median(pieces, axis=1)) / 1.146
     x = float(score[i] / max(mu, 1e-300))
     n_bins = LINE_TRIES * (f[band][-1] - f[band][0]) * rise.size / rate
-    p_noise = min(1.0, n_bins * (1.0 + x) * math.exp(-x))
+    p_noise = min(1.0, n_bins * (1.0 + x / 2.0) * math.exp(-x))
     return 1.0 / (2.0 * f0), p_noise
 
 
