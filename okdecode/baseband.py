@@ -663,6 +663,15 @@ class Baseband:
     spark_rate_hz: float | None = None
 
 
+@dataclass(frozen=True)
+class Tuning:
+    """One carrier to tune: its absolute frequency, channel and (pulsed) wide band."""
+
+    carrier_hz: float
+    channel: int = 0
+    wide_half_band_hz: float | None = None
+
+
 def tune(capture: Capture, carrier_hz: float, *, channel: int = 0,
          wide_half_band_hz: float | None = None, progress=None) -> Baseband:
     """Mix a capture's carrier to 0 Hz and decimate it to about 1 kHz (one pass).
@@ -684,41 +693,59 @@ def tune(capture: Capture, carrier_hz: float, *, channel: int = 0,
     ParameterError
         If the carrier lies outside what the capture's rate can hold.
     """
-    rel_hz = carrier_hz - capture.center_hz
+    return tune_many(capture, [Tuning(carrier_hz, channel, wide_half_band_hz)],
+                     progress=progress)[0]
+
+
+def tune_many(capture: Capture, tunings: list[Tuning], *, progress=None) -> list[Baseband]:
+    """:func:`tune` for several carriers at once, reading the capture once.
+
+    Each carrier has its own oscillator and decimation chain; they share the reading.
+    """
     nyquist = capture.rate_hz / 2
-    if not np.isfinite(rel_hz) or (capture.is_complex and abs(rel_hz) >= nyquist) or (
-            not capture.is_complex and not 0 < rel_hz < nyquist):
-        span = (f"{capture.center_hz - nyquist:g} to {capture.center_hz + nyquist:g} Hz"
-                if capture.is_complex else f"0 to {nyquist:g} Hz")
-        raise ParameterError(capture.source, f"carrier {carrier_hz:g} Hz is outside the "
-                             "recorded band", expected=span)
-    if not 0 <= channel < capture.n_channels:
-        raise ParameterError(capture.source, f"channel {channel} does not exist",
-                             expected=f"0 to {capture.n_channels - 1}")
-    if wide_half_band_hz is not None:
-        wide_half_band_hz = min(wide_half_band_hz, 0.4 * capture.rate_hz)
-    dc = Downconverter(rate_hz=capture.rate_hz, carrier_hz=rel_hz,
-                       is_complex=capture.is_complex, wide_half_band_hz=wide_half_band_hz)
-    parts, power_parts = [], []
+    converters = []
+    for tn in tunings:
+        rel_hz = tn.carrier_hz - capture.center_hz
+        if not np.isfinite(rel_hz) or (capture.is_complex and abs(rel_hz) >= nyquist) or (
+                not capture.is_complex and not 0 < rel_hz < nyquist):
+            span = (f"{capture.center_hz - nyquist:g} to {capture.center_hz + nyquist:g} Hz"
+                    if capture.is_complex else f"0 to {nyquist:g} Hz")
+            raise ParameterError(capture.source, f"carrier {tn.carrier_hz:g} Hz is outside "
+                                 "the recorded band", expected=span)
+        if not 0 <= tn.channel < capture.n_channels:
+            raise ParameterError(capture.source, f"channel {tn.channel} does not exist",
+                                 expected=f"0 to {capture.n_channels - 1}")
+        wide = tn.wide_half_band_hz
+        if wide is not None:
+            wide = min(wide, 0.4 * capture.rate_hz)
+        converters.append(Downconverter(rate_hz=capture.rate_hz, carrier_hz=rel_hz,
+                                        is_complex=capture.is_complex,
+                                        wide_half_band_hz=wide))
+    parts = [[] for _ in tunings]
+    power_parts = [[] for _ in tunings]
     for block in capture.blocks():
-        parts.append(dc.process(block[:, channel]))
-        power_parts.append(dc.take_power())
+        for k, (tn, dc) in enumerate(zip(tunings, converters, strict=True)):
+            parts[k].append(dc.process(block[:, tn.channel]))
+            power_parts[k].append(dc.take_power())
         if progress is not None:
             progress(block.shape[0])
-    parts.append(dc.flush())
-    power_parts.append(dc.take_power())
-    samples = np.concatenate(parts)
-    n_keep = max(int(math.ceil((capture.duration_s - dc.start_s) * dc.out_rate_hz)), 0)
-    power = spark = None
-    if dc.power_bandwidth_hz is not None:
-        power = np.concatenate(power_parts)[:n_keep]
-        pulses = dc.pulse_spectrum()
-        spark = spark_rate_hz(*pulses) if pulses is not None else None
-    return Baseband(samples=samples[:n_keep], rate_hz=dc.out_rate_hz,
-                    start_s=dc.start_s, carrier_hz=float(carrier_hz), channel=channel,
-                    duration_s=capture.duration_s, half_band_hz=BASEBAND_HALF_BAND_HZ,
-                    power=power, power_bandwidth_hz=dc.power_bandwidth_hz,
-                    spark_rate_hz=spark)
+    out = []
+    for k, (tn, dc) in enumerate(zip(tunings, converters, strict=True)):
+        parts[k].append(dc.flush())
+        power_parts[k].append(dc.take_power())
+        samples = np.concatenate(parts[k])
+        n_keep = max(int(math.ceil((capture.duration_s - dc.start_s) * dc.out_rate_hz)), 0)
+        power = spark = None
+        if dc.power_bandwidth_hz is not None:
+            power = np.concatenate(power_parts[k])[:n_keep]
+            pulses = dc.pulse_spectrum()
+            spark = spark_rate_hz(*pulses) if pulses is not None else None
+        out.append(Baseband(samples=samples[:n_keep], rate_hz=dc.out_rate_hz,
+                            start_s=dc.start_s, carrier_hz=float(tn.carrier_hz),
+                            channel=tn.channel, duration_s=capture.duration_s,
+                            half_band_hz=BASEBAND_HALF_BAND_HZ, power=power,
+                            power_bandwidth_hz=dc.power_bandwidth_hz, spark_rate_hz=spark))
+    return out
 
 
 def fine_offset_hz(baseband: Baseband, *, max_offset_hz: float) -> float:
@@ -879,18 +906,19 @@ def envelope(baseband: Baseband, *, filter_s: float, source: str = "",
 
 
 def _power_envelope(baseband: Baseband, n: int, step: int, source: str) -> Envelope:
-    """Envelope of a pulsed carrier: root of the moving average of its band's power.
+    """Envelope of a pulsed carrier: the moving average of its band's power.
 
     The bursts of a spark transmitter have random phases, so they add in power, not in
     amplitude; averaging the power over the filter length bridges the gaps between
-    bursts. Noise alone gives a nearly constant level here (many independent samples
-    averaged), so its Rayleigh-equivalent ``sigma`` is taken from the 10 % quantile of
-    the envelope: key-up fills more than a third of any Morse transmission.
+    bursts, and its ramps are straight, so a threshold halfway up keeps the marks'
+    length. Noise alone gives a nearly constant level here (many independent samples
+    averaged), taken from the 10 % quantile of the envelope (key-up fills more than a
+    third of any Morse transmission) and given as the ``sigma`` whose Rayleigh mean it
+    is, for the next stage's floor.
     """
-    p = moving_average(baseband.power, n, step=step).real
-    magnitude = np.sqrt(np.maximum(p, 0.0))
+    magnitude = np.maximum(moving_average(baseband.power, n, step=step).real, 0.0)
     floor = float(np.quantile(magnitude, 0.1)) if magnitude.size else 0.0
-    sigma = np.full(magnitude.size, floor / math.sqrt(2.0))
+    sigma = np.full(magnitude.size, floor / math.sqrt(math.pi / 2.0))
     return Envelope(magnitude=magnitude, rate_hz=baseband.rate_hz / step,
                     start_s=baseband.start_s, filter_s=n / baseband.rate_hz,
                     noise_bandwidth_hz=float(baseband.power_bandwidth_hz or 0.0),

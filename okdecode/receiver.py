@@ -79,6 +79,33 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
                    channel: int | None = None, wpm: float | None = None,
                    decoder: str = "threshold", progress=None) -> report.Reception:
     """Decode an opened capture. See :func:`decode_file` for the options."""
+    return _decode(capture, carrier_hz=carrier_hz, channel=channel, wpm=wpm,
+                   decoder=decoder, progress=progress, all_carriers=False)[0]
+
+
+def decode_all_carriers(capture: Capture, *, channel: int | None = None,
+                        wpm: float | None = None, decoder: str = "threshold",
+                        progress=None) -> list[report.Reception]:
+    """Decode every keyed carrier the search finds, each on its own, strongest first.
+
+    The capture is read twice in all (the search, then one pass that tunes to every
+    carrier at once). A recording without any keyed carrier gives one empty Reception.
+    """
+    return _decode(capture, carrier_hz=None, channel=channel, wpm=wpm, decoder=decoder,
+                   progress=progress, all_carriers=True)
+
+
+@dataclass(frozen=True)
+class _Target:
+    """A carrier to decode and what the search knew of it."""
+
+    tuning: bb.Tuning
+    found: bb.Carrier | None
+    notes: tuple[str, ...]
+
+
+def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
+            all_carriers: bool) -> list[report.Reception]:
     opts = Options.checked(capture.source, carrier_hz=carrier_hz, channel=channel, wpm=wpm,
                            decoder=decoder)
     warnings: list[str] = []
@@ -87,47 +114,79 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
         raise ParameterError(capture.source, f"channel {opts.channel} does not exist",
                              expected=f"0 to {capture.n_channels - 1}")
     spectrum = None
-    carrier = opts.carrier_hz
     chan = opts.channel
-    wide_hz = None  # half band of a pulsed carrier
-    if carrier is None or (chan is None and capture.n_channels > 1):
+    targets: list[_Target] = []
+    if opts.carrier_hz is None or (chan is None and capture.n_channels > 1):
         spectrum = bb.search_carriers(capture, progress=progress)
         found = [c for c in spectrum.carriers if chan is None or c.channel == chan]
-        if carrier is not None:
-            near = [c for c in found if abs(c.frequency_hz - carrier) < 3 * spectrum.bin_hz]
+        if opts.carrier_hz is not None:
+            near = [c for c in found
+                    if abs(c.frequency_hz - opts.carrier_hz) < 3 * spectrum.bin_hz]
             found = near or found
-        if not found:
-            if carrier is None:
-                warnings.append("no keyed signal found")
-                return report.empty(file=capture.source, duration_s=capture.duration_s,
-                                    rate_hz=capture.rate_hz, channel=chan,
-                                    decoder=opts.decoder, warnings=warnings, notes=notes,
-                                    spectrum=spectrum)
-            chan = 0 if chan is None else chan
-        else:
-            best = found[0]
-            if chan is None:
-                chan = best.channel
-                if capture.n_channels > 1:
-                    notes.append(f"channel {chan} has the strongest keyed signal")
-            if carrier is None:
-                carrier = best.frequency_hz
-            if best.width_hz > WIDE_CARRIER_HZ:
-                # keyed power spread far wider than keying spreads it: damped waves or a
-                # pulse train, whose bursts add in power
-                wide_hz = min(0.75 * best.width_hz + spectrum.bin_hz, MAX_WIDE_HALF_BAND_HZ)
-                notes.append(f"pulsed or damped-wave carrier, {best.width_hz:.0f} Hz wide; "
-                             "bursts are summed in power")
-            # a spark train's comb reaches past its span: its lines are not other stations
-            reach_hz = 2 * best.width_hz if wide_hz is not None else 0.0
-            others = [c for c in found[1:] if abs(c.frequency_hz - best.frequency_hz) > reach_hz]
-            if others:
-                listed = ", ".join(f"{c.frequency_hz:.0f}" for c in others[:3])
-                notes.append(f"other keyed carriers at {listed} Hz")
-    chan = 0 if chan is None else chan
-    base = bb.tune(capture, carrier, channel=chan, wide_half_band_hz=wide_hz,
-                   progress=progress)
-    extra = {"spark_rate_hz": None, "ringing_hz": None, "drift_hz": None}
+        if not found and opts.carrier_hz is None:
+            warnings.append("no keyed signal found")
+            return [report.empty(file=capture.source, duration_s=capture.duration_s,
+                                 rate_hz=capture.rate_hz, channel=chan, decoder=opts.decoder,
+                                 warnings=warnings, notes=notes, spectrum=spectrum)]
+        for c in _distinct(found):
+            targets.append(_target(c, capture, spectrum, opts, chan,
+                                   others=[o for o in found if o is not c]))
+            if not all_carriers:
+                break
+    if not targets:
+        targets.append(_Target(bb.Tuning(float(opts.carrier_hz), 0 if chan is None else chan),
+                               None, ()))
+    bases = bb.tune_many(capture, [t.tuning for t in targets], progress=progress)
+    out = []
+    for rank, (target, base) in enumerate(zip(targets, bases, strict=True)):
+        extra = {"spark_rate_hz": None, "ringing_hz": None, "drift_hz": None}
+        if all_carriers:
+            extra["carrier_rank"] = rank
+        base, more = _settle(base, target, spectrum, opts, extra)
+        out.append(_decode_baseband(base, capture, opts, list(warnings),
+                                    notes + list(target.notes) + more, spectrum, extra))
+    return out
+
+
+def _distinct(found: list[bb.Carrier]) -> list[bb.Carrier]:
+    """Carriers with the lines of a stronger spark train's comb taken out."""
+    kept: list[bb.Carrier] = []
+    for c in found:
+        if any(k.width_hz > WIDE_CARRIER_HZ
+               and abs(c.frequency_hz - k.frequency_hz) <= 2 * k.width_hz for k in kept):
+            continue
+        kept.append(c)
+    return kept
+
+
+def _target(best: bb.Carrier, capture: Capture, spectrum: bb.Spectrum, opts: Options,
+            chan: int | None, *, others: list[bb.Carrier]) -> _Target:
+    notes = []
+    if chan is None and capture.n_channels > 1:
+        notes.append(f"channel {best.channel} has the strongest keyed signal")
+    wide_hz = None
+    if best.width_hz > WIDE_CARRIER_HZ:
+        # keyed power spread far wider than keying spreads it: damped waves or a pulse
+        # train, whose bursts add in power
+        wide_hz = min(0.75 * best.width_hz + spectrum.bin_hz, MAX_WIDE_HALF_BAND_HZ)
+        notes.append(f"pulsed or damped-wave carrier, {best.width_hz:.0f} Hz wide; "
+                     "bursts are summed in power")
+    # a spark train's comb reaches past its span: its lines are not other stations
+    reach_hz = 2 * best.width_hz if wide_hz is not None else 0.0
+    rest = [c for c in others if abs(c.frequency_hz - best.frequency_hz) > reach_hz
+            and (wide_hz is None or c.level_db > best.level_db - 20.0)]
+    if rest:
+        listed = ", ".join(f"{c.frequency_hz:.0f}" for c in rest[:3])
+        notes.append(f"other keyed carriers at {listed} Hz")
+    carrier = best.frequency_hz if opts.carrier_hz is None else opts.carrier_hz
+    return _Target(bb.Tuning(float(carrier), best.channel if chan is None else chan, wide_hz),
+                   best, tuple(notes))
+
+
+def _settle(base: bb.Baseband, target: _Target, spectrum, opts: Options, extra: dict
+            ) -> tuple[bb.Baseband, list[str]]:
+    """Fine tuning and drift for a steady carrier; spark figures for a pulsed one."""
+    notes = []
     if base.power is None:
         search_bin = spectrum.bin_hz if spectrum is not None else 0.0
         max_off = max(1.0 * search_bin, 25.0) if opts.carrier_hz is None else 40.0
@@ -138,13 +197,13 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
             base = bb.follow(base, track)
             extra["drift_hz"] = round(float(np.ptp(track)), 1)
             notes.append(f"carrier drifts over {np.ptp(track):.0f} Hz; followed")
-    else:
-        extra["ringing_hz"] = _round_or_none(best.centroid_hz, 1)
+    elif target.found is not None:
+        extra["ringing_hz"] = _round_or_none(target.found.centroid_hz, 1)
         extra["spark_rate_hz"] = _round_or_none(base.spark_rate_hz, 1)
-        if base.spark_rate_hz is not None:
+        if base.spark_rate_hz is not None and target.found.centroid_hz is not None:
             notes.append(f"spark rate {base.spark_rate_hz:.0f} Hz, ringing near "
-                         f"{best.centroid_hz:.0f} Hz")
-    return _decode_baseband(base, capture, opts, warnings, notes, spectrum, extra)
+                         f"{target.found.centroid_hz:.0f} Hz")
+    return base, notes
 
 
 def _round_or_none(v: float | None, nd: int) -> float | None:
@@ -194,7 +253,7 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
     if level.snr_db is not None and level.snr_db < 6.0:
         warnings.append(f"weak signal: SNR {level.snr_db:.1f} dB in "
                         f"{level.snr_bandwidth_hz:.0f} Hz; expect errors")
-    if syms.farnsworth:
+    if syms.farnsworth and syms.farnsworth_wpm is not None:
         notes.append(f"Farnsworth spacing: characters at {syms.wpm:.1f} WPM, "
                      f"overall {syms.farnsworth_wpm:.1f} WPM")
     return report.assemble(file=source, decoded=decoded, symbols=syms, marks=found,

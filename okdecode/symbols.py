@@ -316,9 +316,11 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
             if math.isfinite(split):
                 gap_conf[longer] = _confidence(lg[longer] - split, max(spread, 0.1))
             if char_centre > math.log(4.5) and (cls == CHARACTER).any():
-                farns = True
                 char_gap_s = float(np.median(g[longer][cls == CHARACTER]))
                 f_wpm = farnsworth_wpm(1.2 / unit, char_gap_s)
+                # stretched gaps make the overall speed slower than the characters'
+                farns = f_wpm < 0.95 * (1.2 / unit)
+                f_wpm = f_wpm if farns else None
         elif longer.sum() == 1:
             gap_class[longer] = CHARACTER if lg[longer][0] < math.log(5.0) else WORD
         gap_conf[elem | longer] = np.minimum(
