@@ -95,13 +95,16 @@ def summary(result) -> str:
 
 
 def _per_file(out: str, path: str, n_files: int) -> str:
-    """OUT itself for one file; OUT-<stem>.<ext> for each of several."""
+    """OUT itself for one output; OUT-<stem>.<ext> for each of several."""
     if n_files == 1:
         return out
     from pathlib import Path
 
     o = Path(out)
-    return str(o.with_name(f"{o.stem}-{Path(path).stem}{o.suffix}"))
+    suffix = "".join(o.suffixes) or o.suffix  # keep ".sigmf-meta" whole
+    stem = o.name[: len(o.name) - len(suffix)] if suffix else o.name
+    tag = Path(path).name.split(".")[0] + (path.split("#")[1] if "#" in path else "")
+    return str(o.with_name(f"{stem}-{tag}{suffix}"))
 
 
 def _reader_options(rate, iq_format, center_hz) -> dict:
@@ -119,12 +122,22 @@ def _reader_options(rate, iq_format, center_hz) -> dict:
 @click.argument("files", nargs=-1, required=True, type=click.Path())
 @click.option("--carrier", type=float, default=None, metavar="HZ",
               help="Carrier frequency (absolute). Default: found from the spectrum.")
-@click.option("--channel", type=int, default=None, metavar="N",
-              help="Channel index. Default: the channel with the strongest keyed signal.")
+@click.option("--channel", default=None, metavar="N|NAME",
+              help="Channel index, or a trace's column name. Default: the channel with the "
+                   "strongest keyed signal.")
 @click.option("--wpm", type=float, default=None, metavar="N",
               help="Sending speed, if known. Default: measured.")
-@click.option("--decoder", default="threshold", show_default=True,
-              help="Decision method.")
+@click.option("--decoder", type=click.Choice(["threshold", "sequence"]), default="threshold",
+              show_default=True,
+              help="threshold: adaptive threshold, element by element; sequence: the "
+                   "soft-decision sequence decoder (better on weak signals and hand keying, "
+                   "slower).")
+@click.option("--all-carriers", is_flag=True,
+              help="Decode every keyed carrier found, each reported on its own.")
+@click.option("--annotate", "annotate_path", default=None, type=click.Path(),
+              metavar="OUT.sigmf-meta",
+              help="SigMF or raw I/Q input: write a copy of its metadata with one annotation "
+                   "per decoded character (the input is never changed).")
 @click.option("--rate", type=float, default=None, metavar="HZ",
               help="Sample rate, for raw I/Q, NumPy arrays and traces without a time column.")
 @click.option("--iq-format", default=None, metavar="TYPE",
@@ -136,35 +149,68 @@ def _reader_options(rate, iq_format, center_hz) -> dict:
                    "each gets its own, OUT-<name>.png.")
 @click.option("--json", "as_json", is_flag=True,
               help="One JSON object per file (JSON Lines) instead of the summary.")
-def decode(files, carrier, channel, wpm, decoder, rate, iq_format, center_hz, plot_path,
-           as_json):
+def decode(files, carrier, channel, wpm, decoder, all_carriers, annotate_path, rate, iq_format,
+           center_hz, plot_path, as_json):
     """Decode keyed recordings and report text, strength and timing."""
     from .capture import open_capture
-    from .receiver import decode_capture
+    from .receiver import decode_all_carriers, decode_capture
 
     status = 0
     for path in files:
         progress = Progress(path, None)
         try:
-            capture = open_capture(path, **_reader_options(rate, iq_format, center_hz))
+            options = _reader_options(rate, iq_format, center_hz)
+            index = _channel_index(channel)
+            if channel is not None and index is None:
+                options["columns"] = channel  # a trace's column, by name
+            capture = open_capture(path, **options)
             progress.total = capture.n_samples
-            result = decode_capture(capture, carrier_hz=carrier, channel=channel, wpm=wpm,
-                                    decoder=decoder, progress=progress)
-            if plot_path is not None:
-                from .plot import write_figure
+            if all_carriers:
+                if carrier is not None:
+                    raise click.UsageError("--all-carriers finds the carriers; drop --carrier")
+                results = decode_all_carriers(capture, channel=index, wpm=wpm,
+                                              decoder=decoder, progress=progress)
+            else:
+                results = [decode_capture(capture, carrier_hz=carrier, channel=index, wpm=wpm,
+                                          decoder=decoder, progress=progress)]
+            for k, result in enumerate(results):
+                name = path if len(results) == 1 else f"{path}#{k}"
+                n_outputs = len(files) * len(results)
+                if plot_path is not None:
+                    from .plot import write_figure
 
-                write_figure(result, _per_file(plot_path, path, len(files)))
+                    write_figure(result, _per_file(plot_path, name, n_outputs))
+                if annotate_path is not None:
+                    from .capture.sigmf_io import write_annotations
+
+                    write_annotations(path, _per_file(annotate_path, name, n_outputs),
+                                      result.characters, rate_hz=rate, iq_format=iq_format,
+                                      center_hz=center_hz, carrier_hz=result.carrier_hz,
+                                      bandwidth_hz=result.level.snr_bandwidth_hz)
+        except click.UsageError:
+            raise
         except Exception as err:  # noqa: BLE001 - one line per file, the others go on
             progress.close()
             _echo_err(fail_line(path, err))
             status = 2
             continue
         progress.close()
-        if as_json:
-            click.echo(json.dumps(result.to_dict(), ensure_ascii=False))
-        else:
-            click.echo(summary(result))
+        for result in results:
+            if as_json:
+                click.echo(json.dumps(result.to_dict(), ensure_ascii=False))
+            else:
+                click.echo(summary(result))
     sys.exit(status)
+
+
+def _channel_index(channel: str | None) -> int | None:
+    """--channel as an index, or None when it names a trace's column (or is absent)."""
+    if channel is None:
+        return None
+    try:
+        return int(channel)
+    except ValueError:
+        return None
 
 
 @main.command(context_settings=_CONTEXT)

@@ -22,7 +22,9 @@ from . import text as tx
 from .capture import Capture, from_array, open_capture
 from .errors import ParameterError
 
-DECODERS = ("threshold",)
+#: "threshold": the adaptive threshold, element by element (the baseline);
+#: "sequence": the soft-decision sequence decoder (okdecode.sequence) on top of it.
+DECODERS = ("threshold", "sequence")
 #: Filter lengths tried before the speed is known, s (they suit about 5 to 60 WPM).
 FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096, 0.192)
 #: Length of the stretch of a long recording on which the filter length is chosen, s.
@@ -238,6 +240,11 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
             if trial[3].dot_s is None:
                 break
             score, env, found, syms, decoded = trial
+    if opts.decoder == "sequence" and base.power is None and syms.dot_s is not None:
+        from . import sequence
+
+        found, syms = sequence.refine(base, env, found, syms, source=source)
+        decoded = tx.decode(syms)
     if not decoded.characters:
         warnings.append("no keyed signal found")
         return report.empty(file=source, duration_s=capture.duration_s,
@@ -355,7 +362,8 @@ def decode_file(path: str | PathLike, *, carrier_hz: float | None = None,
     wpm : float, optional
         Sending speed, WPM, when known.
     decoder : str
-        ``"threshold"``.
+        ``"threshold"`` (adaptive threshold, element by element) or ``"sequence"`` (the
+        soft-decision sequence decoder, which starts from the threshold's decision).
     progress : callable, optional
         Called with the number of samples handled after each block.
     **reader_options
