@@ -339,16 +339,17 @@ class Segment:
     node: int  # marks: the tree node the mark reached
 
 
-def _mark_llrs(lat: _Lattice, track: _Track, d: np.ndarray) -> np.ndarray:
-    """Ratio of a mark of each duration ``d`` ending at each step: shape (T + 1, len(d)).
+def _mark_llrs(lat: _Lattice, track: _Track, d: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Ratio of a mark of each duration ``d`` ending at each step ``t``: (len(t), len(d)).
 
-    -inf where the mark would begin before the lattice.
+    -inf where the mark would begin before the lattice or end outside it.
     """
     n_t = lat.time_s.size
-    t = np.arange(n_t)[:, None]
+    t = t.reshape(-1, 1)
     a = t - d[None, :]
-    ok = a >= 0
-    a = np.maximum(a, 0)
+    ok = (a >= 0) & (t < n_t)
+    a = np.clip(a, 0, n_t - 1)
+    t = np.clip(t, 0, n_t - 1)
     y = lat.cumsum[t] - lat.cumsum[a]
     n = (lat.time_s[t] - lat.time_s[a]) * lat.fs
     mid = 0.5 * (lat.time_s[t] + lat.time_s[a])
@@ -422,8 +423,6 @@ def viterbi(lat: _Lattice, track: _Track, durations: Durations) -> tuple[list[Se
     model = _model(durations, lat.k)
     k = lat.k
     n_t = lat.time_s.size
-    llr = _mark_llrs(lat, track, model.d_mark)
-    s_mark = (llr[:, :, None] + model.lp_mark[None]).astype(np.float32)
     own = CHUNK_UNITS * k
     context = max(CONTEXT_UNITS * k, 2 * model.pad)
     if n_t <= own + 2 * context:
@@ -435,16 +434,15 @@ def viterbi(lat: _Lattice, track: _Track, durations: Durations) -> tuple[list[Se
     for first in range(0, starts.size, MAX_CHUNKS):
         batch = starts[first : first + MAX_CHUNKS]
         idx = batch[:, None] + np.arange(width)[None, :]
-        inside = (idx >= 0) & (idx < n_t)
-        s = s_mark[np.clip(idx, 0, n_t - 1)]
-        s[~inside] = -np.inf  # no mark outside the lattice
+        llr = _mark_llrs(lat, track, model.d_mark, idx).reshape(*idx.shape, -1)
+        s = (llr[..., None] + model.lp_mark).astype(np.float32)  # no mark outside: -inf
         for start, segs in zip(batch, _viterbi_chunks(s, model), strict=True):
             chunks.append([Segment(g.start + start, g.end + start, g.is_mark, g.kind, g.node)
                            for g in segs])
     segments = chunks[0] if len(chunks) == 1 else _stitch(chunks, own, context, model)
     if not segments:
         return [], 0.0
-    return segments, _path_score(segments, s_mark, model)
+    return segments, _path_score(segments, lat, track, model)
 
 
 def _characters(segments: list[Segment]) -> list[tuple[list[Segment], Segment | None]]:
@@ -502,15 +500,20 @@ def _stitch(chunks: list[list[Segment]], own: int, context: int, model: _Model
     return out
 
 
-def _path_score(segments: list[Segment], s_mark: np.ndarray, model: _Model) -> float:
+def _path_score(segments: list[Segment], lat: _Lattice, track: _Track, model: _Model
+                ) -> float:
     """Score of a decode as :func:`viterbi` counts it."""
     tree = _tree()
     total = 0.0
+    marks = [g for g in segments if g.is_mark]
+    ends = np.array([g.end for g in marks])
+    j = np.clip(np.array([g.end - g.start for g in marks]) - model.d_mark[0], 0,
+                model.d_mark.size - 1)
+    llr = _mark_llrs(lat, track, model.d_mark, ends)[np.arange(ends.size), j]
+    total += float(np.sum(llr + model.lp_mark[j, [g.kind for g in marks]]))
     for seg in segments:
         d = seg.end - seg.start
         if seg.is_mark:
-            j = int(np.clip(d - model.d_mark[0], 0, model.d_mark.size - 1))
-            total += float(s_mark[seg.end, j, seg.kind])
             continue
         table = {ELEMENT: (model.d_el, model.lp_el), CHARACTER: (model.d_ch, model.lp_ch),
                  WORD: (model.d_wd, model.lp_wd)}[seg.kind]
