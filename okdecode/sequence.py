@@ -312,15 +312,19 @@ def track_amplitude(baseband: Baseband, start_s: np.ndarray, end_s: np.ndarray,
     d_mid = np.interp(mid, time_s, density)
     num = np.abs(y) ** 2 - n * baseband.rate_hz * d_mid
     den = n * n
-    # evaluate on a coarse grid of times, then interpolate: the amplitude moves slowly
-    grid = np.arange(time_s[0], time_s[-1] + kernel_s / 4, kernel_s / 4)
-    w = np.exp(-0.5 * ((grid[:, None] - mid[None, :]) / kernel_s) ** 2)
-    a2 = (w @ num) / np.maximum(w @ den, 1e-300)
+    # on a coarse grid of times (the amplitude moves slowly): each mark in its bin, then
+    # the Gaussian kernel over the bins, then back to every time by interpolation
+    step_s = kernel_s / 4
+    grid = np.arange(time_s[0], time_s[-1] + step_s, step_s)
+    where = np.clip(np.round((mid - grid[0]) / step_s).astype(np.int64), 0, grid.size - 1)
+    kernel = np.exp(-0.5 * (np.arange(-16, 17) / 4.0) ** 2)  # +-4 half-widths
+    smooth = [np.convolve(np.bincount(where, weights=v, minlength=grid.size), kernel, "same")
+              for v in (num, den, np.ones(num.size))]
+    a2 = smooth[0] / np.maximum(smooth[1], 1e-300)
     strong = np.sqrt(np.maximum(a2, 0.0))
     # far from every mark the weights vanish: hold the global estimate there
     whole = math.sqrt(max(float(num.sum() / den.sum()), 0.0))
-    support = w.sum(axis=1)
-    strong = np.where(support > 0.05, strong, whole)
+    strong = np.where(smooth[2] > 0.05, strong, whole)
     return np.interp(time_s, grid, strong)
 
 
