@@ -406,7 +406,7 @@ def _model(durations: Durations, k: int) -> _Model:
 
 #: The lattice is decoded in chunks of this many dots, side by side (one numpy operation
 #: serves them all), each with this many dots of context on either side.
-CHUNK_UNITS = 150
+CHUNK_UNITS = 300
 CONTEXT_UNITS = 40
 #: At most this many chunks are decoded together (it bounds the memory).
 MAX_CHUNKS = 48
@@ -561,7 +561,9 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
     # best scores of paths ending at each step (the last axis) with:
     m_all = np.full((n_c, n_nodes - 1, rows), neg, dtype=np.float32)  # a mark at the node
     m_inner = np.full((n_c, n_in, rows), neg, dtype=np.float32)  # the same, inner nodes
-    g_par = np.full((n_c, n_nodes - 1, rows), neg, dtype=np.float32)  # a gap at the parent
+    # a gap at the parent of each dot node, of each dash node
+    g_dot = np.full((n_c, n_dot, rows), neg, dtype=np.float32)
+    g_dash = np.full((n_c, n_nodes - 1 - n_dot, rows), neg, dtype=np.float32)
     c_score = np.full((n_c, rows), neg, dtype=np.float32)  # a completed character
     c_best = np.full((n_c, rows), neg, dtype=np.float32)  # its running maximum, for pauses
     c_best_at = np.zeros((n_c, rows), dtype=np.int64)
@@ -569,14 +571,19 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
     off_el = lane[:, None] - d_el[None, :]
     off_ch = lane[:, None] - d_ch[None, :]
     off_wd = lane[:, None] - d_wd[None, :]
-    off_mark = lane[:, None] - d_mark[None, :]
+    # a dot node takes the durations a dot may have, a dash node those of a dash
+    j_dot = np.flatnonzero(np.isfinite(model.lp_mark[:, 0]))
+    j_dash = np.flatnonzero(np.isfinite(model.lp_mark[:, 1]))
+    off_dot = lane[:, None] - d_mark[None, j_dot]
+    off_dash = lane[:, None] - d_mark[None, j_dash]
     g_all = np.empty((n_c, n_in + 1, block), dtype=np.float32)
     options = np.empty((4, n_c, block), dtype=np.float32)
     options[0] = 0.0
     inner_col = inner - 1
     full_col = full - 1
-    s_dot = np.ascontiguousarray(s_chunk[..., 0])[:, None]  # (chunks, 1, steps, durations)
-    s_dash = np.ascontiguousarray(s_chunk[..., 1])[:, None]
+    s_dot = np.ascontiguousarray(s_chunk[:, :, j_dot, 0])[:, None]  # (chunks, 1, steps, d)
+    s_dash = np.ascontiguousarray(s_chunk[:, :, j_dash, 1])[:, None]
+    par_dot, par_dash = par[:n_dot], par[n_dot:]
     for t0 in range(pad, rows, block):
         b = min(block, rows - t0)
         r = slice(t0, t0 + b)
@@ -586,12 +593,14 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
         options[2, :, :b] = (np.take(c_score, t0 + off_wd[:b], axis=1) + lp_wd).max(axis=2)
         options[3, :, :b] = c_best[:, t0 - p_min : t0 - p_min + b] + PAUSE_LOG_P
         g_all[:, 0, :b] = options[:, :, :b].max(axis=0)
-        g_par[:, :, r] = g_all[:, par, :b]
+        g_dot[:, :, r] = g_all[:, par_dot, :b]
+        g_dash[:, :, r] = g_all[:, par_dash, :b]
         # marks: one step down the tree from the node the gap before them left
-        cand = np.take(g_par, t0 + off_mark[:b], axis=2)  # (chunks, nodes, b, durations)
-        cand[:, :n_dot] += s_dot[:, :, t0 - pad : t0 - pad + b]
-        cand[:, n_dot:] += s_dash[:, :, t0 - pad : t0 - pad + b]
-        m = cand.max(axis=3)
+        m = np.concatenate([
+            (np.take(g_dot, t0 + off_dot[:b], axis=2)  # (chunks, nodes, b, durations)
+             + s_dot[:, :, t0 - pad : t0 - pad + b]).max(axis=3),
+            (np.take(g_dash, t0 + off_dash[:b], axis=2)
+             + s_dash[:, :, t0 - pad : t0 - pad + b]).max(axis=3)], axis=1)
         m_all[:, :, r] = m
         m_inner[:, :, r] = m[:, inner_col]
         c = (m[:, full_col] + prior).max(axis=1)
@@ -607,7 +616,8 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
         if not np.isfinite(c_score[ci, end]) or c_score[ci, end] <= 0.0:
             out.append([])
             continue
-        out.append(_back_track(end, model, s_chunk[ci], m_all[ci], m_inner[ci], g_par[ci],
+        g_par = np.concatenate([g_dot[ci], g_dash[ci]])
+        out.append(_back_track(end, model, s_chunk[ci], m_all[ci], m_inner[ci], g_par,
                                c_score[ci], c_best[ci], c_best_at[ci], gap_pos, full, prior))
     return out
 

@@ -192,7 +192,7 @@ def test_refine_without_speed_returns_inputs():
 
 def test_chunked_decode_equals_one_pass(monkeypatch):
     # a message several chunks long, weak enough that the decision is not trivial
-    sent = " ".join(["XQ7ZB DE KT4RM 5NN TU QRV 73"] * 4)
+    sent = " ".join(["XQ7ZB DE KT4RM 5NN TU QRV 73"] * 7)
     rec = synth(sent, wpm=25, cn0_dbhz=25.0, seed=61)
     r = decode_array(rec.samples, rec.rate_hz, carrier_hz=rec.truth.scenario.carrier_hz)
     # PARIS = 50 units: dot_s = 1.2 / WPM; the recording spans more than two chunks
