@@ -937,7 +937,18 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     (Marks, Symbols)
         The same kinds of results as the threshold path's, so :func:`okdecode.text.decode`
         reads them as it reads those; with the inputs unchanged when the threshold path
-        found no speed.
+        found no speed or fewer than two marks, or when no sequence of marks is likelier
+        than noise alone.
+
+    Examples
+    --------
+    >>> from okdecode.receiver import decode_array
+    >>> from okdecode.synth import synth
+    >>> rec = synth("XQ7ZB", wpm=20, cn0_dbhz=30.0, seed=1)
+    >>> r = decode_array(rec.samples, rec.rate_hz)
+    >>> found, syms = refine(r.baseband, r.envelope, r.marks, r.symbols, source="x")
+    >>> decode(syms).text, found.n_marks
+    ('XQ7ZB', 21)
     """
     if symbols.dot_s is None or symbols.n_marks < 2 or baseband.samples.size < 16:
         return marks, symbols
