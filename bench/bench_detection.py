@@ -163,13 +163,13 @@ def main() -> None:
     for c, name in ((c_det, "90 % detection"), (c_dec, "5 % CER")):
         if c is not None:
             ax.axvline(c, color="0.4", lw=0.8)
-            ax.text(c, 0.5, f" {name}\n {c:.1f} dB-Hz", fontsize=8)
+            ax.text(c, 0.22, f" {name}\n {c:.1f} dB-Hz", fontsize=8)
     ax.set_xlabel("C/N0, dB-Hz")
     ax.set_ylabel("probability / error rate")
     ax.set_ylim(-0.02, 1.05)
     ax.set_title(f"{len(args.message)}-character message, {args.wpm:g} WPM, "
                  f"{args.rate / 1000:g} kHz")
-    ax.legend(loc="center right", fontsize=8)
+    ax.legend(loc="center", bbox_to_anchor=(0.5, 0.55), fontsize=8)
     fig.tight_layout()
     os.makedirs(args.out, exist_ok=True)
     path = os.path.join(args.out, "bench_detection.png")

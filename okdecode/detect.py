@@ -26,7 +26,7 @@ energy over its noise power is a sum of ``m`` unit exponentials, i.e. ``chi^2_{2
 [1]_, disjoint cells are independent, and ``F`` follows Fisher's F distribution with
 ``2 m n_mark`` and ``2 m n_space`` degrees of freedom: the single-test false-alarm
 probability ``p = P(F_{d1,d2} > F)`` is exact and needs no noise estimate. The search
-takes the largest ``F`` over start times (a grid of ``samples_per_unit`` per dot), speeds
+takes the largest ``F`` over start times (2 per dot, then 6 on the fine grid), speeds
 (5 to 50 WPM on a geometric grid) and Farnsworth stretches, first on a coarse grid by
 FFT correlation over every start, then on a fine grid around the best coarse fits. The
 false-alarm probability of the search is the Sidak correction ``1 - (1 - p)^N`` [3]_ with
