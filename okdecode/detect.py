@@ -92,6 +92,8 @@ FINE_UNITS = 0.25
 COARSE_PER_UNIT, FINE_PER_UNIT = 2, 6
 #: Coarse fits searched again on the fine grid.
 N_REFINE = 4
+#: Largest template bank correlated at once, complex elements (64 MiB).
+BANK_ELEMENTS = 1 << 22
 #: Effective tests per coarse grid step, per dot of end misalignment (times the
 #: sub-windows per dot for speed), from the correlation of the statistic between grid
 #: points and checked by noise-only trials (bench/bench_detection.py).
@@ -386,22 +388,28 @@ def _coarse(energies: CellEnergies, lay: Layout, speeds: np.ndarray, *, max_stre
         # speed step and 2 e per stretch step
         dims = SPEED_TESTS * grid_units * m * (STRETCH_TESTS * grid_units if n_t > 1 else 1.0)
         n_fft = fft.next_fast_len(k)
-        bank = np.zeros((n_t, n_fft), dtype=np.complex128)
-        rows = np.arange(n_t)[:, None]
-        bank[rows, mpos] = 1.0
-        bank[rows, spos] = 1j
-        # sum_j q[tau + j] T[j] for T = marks + 1j spaces: mark sums in the real part and
-        # space sums in the imaginary part, as q is real
         spec = fft.fft(energy, n_fft)
-        corr = fft.ifft(spec[None, :] * np.conj(fft.fft(np.conj(bank), axis=1, workers=-1)),
-                        axis=1, workers=-1)
         n_tau = k - last
-        corr = corr[:, : int(n_tau.max())]
         n_m, n_s = mpos.shape[1], spos.shape[1]
-        q = (corr.real / n_m) / np.maximum(corr.imag / n_s, 1e-300)
-        q[np.arange(q.shape[1])[None, :] >= n_tau[:, None]] = -np.inf
-        tau = np.argmax(q, axis=1)
-        ratio = q[np.arange(n_t), tau]
+        tau = np.empty(n_t, dtype=int)
+        ratio = np.empty(n_t)
+        # templates in batches, so that memory stays bounded on long recordings
+        batch = max(1, BANK_ELEMENTS // n_fft)
+        for lo in range(0, n_t, batch):
+            sl = slice(lo, min(lo + batch, n_t))
+            bank = np.zeros((sl.stop - sl.start, n_fft), dtype=np.complex128)
+            rows = np.arange(bank.shape[0])[:, None]
+            bank[rows, mpos[sl]] = 1.0
+            bank[rows, spos[sl]] = 1j
+            # sum_j q[tau + j] T[j] for T = marks + 1j spaces: mark sums in the real part
+            # and space sums in the imaginary part, as q is real
+            corr = fft.ifft(spec[None, :] * np.conj(fft.fft(np.conj(bank), axis=1,
+                                                            workers=-1)), axis=1, workers=-1)
+            corr = corr[:, : int(n_tau[sl].max())]
+            q = (corr.real / n_m) / np.maximum(corr.imag / n_s, 1e-300)
+            q[np.arange(q.shape[1])[None, :] >= n_tau[sl, None]] = -np.inf
+            tau[sl] = np.argmax(q, axis=1)
+            ratio[sl] = q[np.arange(q.shape[0]), tau[sl]]
         n_tests += float(np.maximum(1.0, n_tau / p).sum()) * m * dims
         d1, d2 = 2 * m * n_m, 2 * m * n_s
         # P(F > x) = I_{d2/(d2 + d1 x)}(d2/2, d1/2), the regularised incomplete beta
