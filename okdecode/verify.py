@@ -109,29 +109,42 @@ def align(expected: Sequence[str], received: Sequence[str], *, free_ends: bool =
     """
     n, m = len(expected), len(received)
     # d[i][j]: cost of expected[:i] against received[k:j] for the best k (free_ends) or
-    # k = 0
+    # k = 0; k[i][j] that start (on ties the earliest, so that the copy is the longest);
+    # move[i][j] the step that got there: 0 diagonal, 1 missing, 2 extra
     d = [[0] * (m + 1) for _ in range(n + 1)]
+    k = [[0] * (m + 1) for _ in range(n + 1)]
+    move = [[2] * (m + 1) for _ in range(n + 1)]
     for j in range(m + 1):
         d[0][j] = 0 if free_ends else j
+        k[0][j] = j if free_ends else 0
     for i in range(1, n + 1):
-        row, up = d[i], d[i - 1]
-        row[0] = i
+        row, up, krow, kup, mrow = d[i], d[i - 1], k[i], k[i - 1], move[i]
+        row[0], krow[0], mrow[0] = i, kup[0], 1
         e = expected[i - 1]
         for j in range(1, m + 1):
-            row[j] = min(up[j] + 1, row[j - 1] + 1, up[j - 1] + (e != received[j - 1]))
+            best = (up[j - 1] + (e != received[j - 1]), kup[j - 1], 0)
+            cand = (up[j] + 1, kup[j], 1)
+            if cand[:2] < best[:2]:
+                best = cand
+            cand = (row[j - 1] + 1, krow[j - 1], 2)
+            if cand[:2] < best[:2]:
+                best = cand
+            row[j], krow[j], mrow[j] = best
     if free_ends:
-        last = d[n]
-        end = min(range(m + 1), key=lambda j: (last[j], -j))  # the longest of the best
+        last, klast = d[n], k[n]
+        # the least cost; on ties the longest copy: latest end, then earliest start
+        end = min(range(m + 1), key=lambda j: (last[j], -(j - klast[j]), -j))
     else:
         end = m
     i, j = n, end
     ops: list[tuple[str, int | None, int | None]] = []
     while i > 0 or (j > 0 and not free_ends):
-        if i > 0 and j > 0 and d[i][j] == d[i - 1][j - 1] + (expected[i - 1] != received[j - 1]):
+        step = move[i][j] if i > 0 else 2
+        if step == 0:
             kind = "match" if expected[i - 1] == received[j - 1] else "substitution"
             ops.append((kind, i - 1, j - 1))
             i, j = i - 1, j - 1
-        elif i > 0 and d[i][j] == d[i - 1][j] + 1:
+        elif step == 1:
             ops.append(("missing", i - 1, j))
             i -= 1
         else:
