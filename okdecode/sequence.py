@@ -798,6 +798,13 @@ def line_unit_s(baseband: Baseband, *, min_wpm: float = 5.0, max_wpm: float = 50
     some twentyfold (the spectrum is padded twofold, and the floor is itself measured),
     so ``n`` is taken ``LINE_TRIES`` times larger.
     """
+    found = _lines(baseband, min_wpm=min_wpm, max_wpm=max_wpm, n_lines=1)
+    return found[0] if found else (None, 1.0)
+
+
+def _lines(baseband: Baseband, *, min_wpm: float, max_wpm: float, n_lines: int
+           ) -> list[tuple[float, float]]:
+    """The ``n_lines`` strongest keying lines at least 10 % apart, strongest first."""
     z = baseband.samples
     fs = baseband.rate_hz
     step = max(1, int(fs // 200))  # the edges' power is wanted up to about 70 Hz
@@ -808,7 +815,7 @@ def line_unit_s(baseband: Baseband, *, min_wpm: float = 5.0, max_wpm: float = 50
         p = p[: m * step].reshape(m, step).mean(axis=1)
     rate = fs / step
     if p.size < 64:
-        return None, 1.0
+        return []
     rise = np.maximum(np.diff(p), 0.0)
     rise -= rise.mean()
     n_fft = 1 << int(math.ceil(math.log2(2 * rise.size)))
@@ -816,25 +823,29 @@ def line_unit_s(baseband: Baseband, *, min_wpm: float = 5.0, max_wpm: float = 50
     f = np.fft.rfftfreq(n_fft, 1.0 / rate)
     band = (f >= 1.0 / (2 * 1.2 / min_wpm)) & (f <= 1.0 / (2 * 1.2 / max_wpm))
     if not band.any() or 3 * f[band][-1] >= rate / 2:
-        return None, 1.0
+        return []
     # the third harmonic counts only as far as the first is as strong: a noise peak at a
     # third of the line's frequency must not borrow the line as its "harmonic"
     score = power[band] + np.minimum(power[band], np.interp(3 * f[band], f, power))
-    i = int(np.argmax(score))
-    f0 = float(f[band][i])
-    if not 1.03 * f[band][0] < f0 < f[band][-1] / 1.03:  # at an edge: no line inside
-        return None, 1.0
-    # the floor around the line: the median over half-hertz pieces of the band (the
-    # random keying's own spectrum is not flat); see the notes for its 1.146 mu
+    fb = f[band]
+    # the floor around a line: the median over half-hertz pieces of the band (the random
+    # keying's own spectrum is not flat); see the notes for its 1.146 mu
     n_piece = max(8, int(0.5 / (f[1] - f[0])))
     n_pieces = max(1, score.size // n_piece)
     pieces = score[: n_pieces * n_piece].reshape(n_pieces, n_piece)
-    centres = f[band][: n_pieces * n_piece].reshape(n_pieces, n_piece).mean(axis=1)
-    mu = np.interp(f0, centres, np.median(pieces, axis=1)) / 1.146
-    x = float(score[i] / max(mu, 1e-300))
-    n_bins = LINE_TRIES * (f[band][-1] - f[band][0]) * rise.size / rate
-    p_noise = min(1.0, n_bins * (1.0 + x / 2.0) * math.exp(-x))
-    return 1.0 / (2.0 * f0), p_noise
+    centres = fb[: n_pieces * n_piece].reshape(n_pieces, n_piece).mean(axis=1)
+    floor = np.median(pieces, axis=1) / 1.146
+    n_bins = LINE_TRIES * (fb[-1] - fb[0]) * rise.size / rate
+    found: list[tuple[float, float]] = []
+    for _ in range(n_lines):
+        i = int(np.argmax(score))
+        f0 = float(fb[i])
+        if not np.isfinite(score[i]) or not 1.03 * fb[0] < f0 < fb[-1] / 1.03:
+            break  # at an edge: no line inside
+        x = float(score[i] / max(float(np.interp(f0, centres, floor)), 1e-300))
+        found.append((1.0 / (2.0 * f0), min(1.0, n_bins * (1.0 + x / 2.0) * math.exp(-x))))
+        score = np.where(np.abs(np.log(fb / f0)) < math.log(1.1), -np.inf, score)
+    return found
 
 
 @dataclass(frozen=True)
@@ -967,7 +978,8 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
                                                      dot_s))
     thr_decision = _Decision(symbols.start_s, symbols.end_s, symbols.is_dash,
                              symbols.gap_class)
-    line_s, line_p = line_unit_s(baseband)
+    lines = _lines(baseband, min_wpm=5.0, max_wpm=50.0, n_lines=2)
+    line_s, line_p = lines[0] if lines else (None, 1.0)
     tries: list[tuple[tuple[np.ndarray, np.ndarray], _Decision | None]] = []
     ratio = line_s / dot_s if line_s else 1.0
     # a threshold path that has lost the signal reads noise as code far too fast or slow
@@ -977,6 +989,8 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
         tries.append((thr_track, thr_decision))
     elif not plausible:  # nothing to lose: the line, however weak, is all there is
         tries.append((line_track, None))
+        if line_p > LINE_MAX_P and len(lines) > 1:  # a weak line: the next one too
+            tries.append(((np.array([0.0]), np.array([lines[1][0]])), None))
     elif abs(math.log(ratio)) >= math.log(1.08):
         # the threshold path's speed and the keying line disagree: the likelier wins
         tries += [(thr_track, thr_decision), (line_track, None)]
