@@ -67,7 +67,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import TYPE_CHECKING
+from typing import Protocol
 
 import numpy as np
 
@@ -75,9 +75,6 @@ from .baseband import Baseband, Envelope, moving_average, noise_density
 from .marks import Marks
 from .symbols import CHARACTER, ELEMENT, WORD, Symbols, farnsworth_wpm
 from .text import PATTERNS, decode
-
-if TYPE_CHECKING:
-    from .report import Reception
 
 #: Steps of the time lattice per dot.
 STEPS_PER_UNIT = 6
@@ -1058,7 +1055,19 @@ def _levels(envelope: Envelope, marks: Marks, start_s: np.ndarray, end_s: np.nda
     return level, snr_db
 
 
-def decode_reception_text(reception: Reception) -> str:
+class Received(Protocol):
+    """What :func:`decode_reception_text` reads of an :class:`okdecode.report.Reception`
+    (named so, not imported: this module comes before the report)."""
+
+    file: str
+    text: str
+    baseband: Baseband | None
+    envelope: Envelope | None
+    marks: Marks | None
+    symbols: Symbols | None
+
+
+def decode_reception_text(reception: Received) -> str:
     """Text of a threshold-path reception decoded again by :func:`refine`.
 
     Returns the reception's own text when it holds no baseband or marks.
