@@ -39,9 +39,7 @@ __all__ = [
     "Outcome",
     "Store",
     "Summary",
-    "cer",
     "discover",
-    "levenshtein",
     "process",
     "read_manifest",
     "run",
@@ -353,81 +351,14 @@ def content_hash(path: str | os.PathLike) -> str:
 # --- verification ---------------------------------------------------------------------------
 
 
-def levenshtein(a: str, b: str) -> int:
-    """Edit distance (substitutions, insertions, deletions, each 1) between two strings.
-
-    The dynamic program of V. I. Levenshtein, "Binary codes capable of correcting
-    deletions, insertions, and reversals", Soviet Physics Doklady 10(8), 1966, row by row.
-
-    Examples
-    --------
-    >>> levenshtein("XQ7ZB", "XQ7B")
-    1
-    """
-    if len(a) < len(b):
-        a, b = b, a
-    prev = list(range(len(b) + 1))
-    for i, ca in enumerate(a, start=1):
-        cur = [i]
-        for j, cb in enumerate(b, start=1):
-            cur.append(min(prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (ca != cb)))
-        prev = cur
-    return prev[-1]
-
-
-def cer(expected: str, received: str) -> float:
-    """Character error rate: edit distance over the length of the expected text.
-
-    Both texts are first put in the spelling decoding gives
-    (:func:`okdecode.text.canonical`); a procedural signal such as ``<AR>`` counts as one
-    character.
-
-    Examples
-    --------
-    >>> cer("VVV XQ7ZB", "VVV XQ7ZN")
-    0.1111111111111111
-    """
-    from .text import canonical, tokens
-
-    e, r = list(tokens(canonical(expected))), list(tokens(canonical(received)))
-    if not e:
-        return 0.0 if not r else 1.0
-    return _token_distance(e, r) / len(e)
-
-
-def _token_distance(a: list[str], b: list[str]) -> int:
-    # the same program as levenshtein, on tokens, so a prosign is one character
-    prev = list(range(len(b) + 1))
-    for i, ca in enumerate(a, start=1):
-        cur = [i]
-        for j, cb in enumerate(b, start=1):
-            cur.append(min(prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (ca != cb)))
-        prev = cur
-    return prev[-1]
-
-
-def _fallback_verification(reception, expect: str, max_cer: float) -> dict:
-    """A minimal comparison, used while okdecode.verify is not installed."""
-    from .text import canonical
-
-    exp, got = canonical(expect), canonical(reception.text)
-    rate = cer(expect, reception.text)
-    return {"file": reception.file, "expected": exp, "text": got, "cer": rate,
-            "received": rate <= max_cer, "copies": got.count(exp) if exp else 0,
-            "differences": [], "detection": None}
-
-
 def _verify(reception, job: Job, capture) -> dict:
-    """okdecode.verify's comparison and known-message detection, or the minimal fallback."""
-    if importlib.util.find_spec("okdecode.verify") is not None:
-        from . import verify
+    """okdecode.verify's comparison and known-message detection, as a dict."""
+    from . import verify
 
-        if hasattr(verify, "verify_reception"):
-            return verify.verify_reception(
-                reception, job.expect, max_cer=job.max_cer, capture=capture,
-                carrier_hz=job.decode_options.get("carrier_hz"),
-                channel=job.decode_options.get("channel")).to_dict()
-    return _fallback_verification(reception, job.expect, job.max_cer)
+    return verify.verify_reception(
+        reception, job.expect, max_cer=job.max_cer, capture=capture,
+        carrier_hz=job.decode_options.get("carrier_hz"),
+        channel=job.decode_options.get("channel")).to_dict()
 
 
 # --- the work of one recording --------------------------------------------------------------
@@ -882,7 +813,7 @@ def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | Non
                              expected="a writable folder") from err
     out_abs = str(out_dir.resolve())
     if figures is None:
-        figures = importlib.util.find_spec("okdecode.plot") is not None
+        figures = True
     with Store(out_dir / STORE_NAME) as store:
         todo, keys, seen = [], [], set()
         skipped = 0

@@ -170,34 +170,6 @@ def test_a_batch_that_cannot_start_exits_2(tmp_path):
         res.stderr)
 
 
-# --- character error rate (the fallback while okdecode.verify is absent) --------------------
-
-
-@given(st.text(alphabet="ABE7 ", max_size=12), st.text(alphabet="ABE7 ", max_size=12))
-def test_levenshtein_matches_a_reference_library(a, b):
-    rapidfuzz = pytest.importorskip("rapidfuzz")
-    # rapidfuzz.distance.Levenshtein: unit-cost edit distance, the reference
-    assert batch.levenshtein(a, b) == rapidfuzz.distance.Levenshtein.distance(a, b)
-
-
-def test_cer_counts_a_procedural_signal_as_one_character():
-    # ITU-R M.1677-1: <AR> is one signal; canonical() spells "+" as <AR>
-    assert batch.cer("XQ7ZB <AR>", "XQ7ZB +") == 0.0
-    assert batch.cer("XQ7ZB <AR>", "XQ7ZB") == pytest.approx(2 / 7)  # the space and <AR>
-    assert batch.cer("xq7zb", "XQ7ZN") == pytest.approx(1 / 5)
-
-
-def test_the_fallback_comparison_gives_the_keys_of_okdecode_verify(campaign):
-    from okdecode.receiver import decode_file
-
-    rec = decode_file(campaign / "r01.flac")
-    mine = batch._fallback_verification(rec, MESSAGES[1], 0.0)
-    assert (mine["received"], mine["cer"], mine["copies"]) == (True, 0.0, 1)
-    assert batch._fallback_verification(rec, "XQ7ZB", 0.0)["received"] is False
-    verify = pytest.importorskip("okdecode.verify")
-    theirs = verify.verify_reception(rec, MESSAGES[1], detect=False).to_dict()
-    assert set(mine) <= set(theirs)
-    assert (theirs["received"], theirs["cer"]) == (mine["received"], mine["cer"])
 
 
 # --- the store ------------------------------------------------------------------------------
