@@ -244,6 +244,8 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
         from . import sequence
 
         found, syms = sequence.refine(base, env, found, syms, source=source)
+        if not opts.wpm:
+            syms = sy.refit_unit(syms)
         decoded = tx.decode(syms)
     if not decoded.characters:
         warnings.append("no keyed signal found")

@@ -34,7 +34,7 @@ timing error on log duration).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -215,6 +215,27 @@ def _fit_unit(start: np.ndarray, end: np.ndarray, is_dash: np.ndarray,
         keep = np.abs(resid) <= 4 * 1.4826 * mad
     u = float(coef[0])
     return u if u > 0 else None
+
+
+def refit_unit(symbols: Symbols) -> Symbols:
+    """The same symbols with the unit fitted on every edge inside words (:func:`_fit_unit`).
+
+    For a decision made elsewhere (the sequence decoder), so that its speed is measured
+    the same way as the threshold path's. Unchanged when the fit has too few intervals.
+    """
+    if symbols.n_marks < 2:
+        return symbols
+    unit = _fit_unit(symbols.start_s, symbols.end_s, symbols.is_dash, symbols.gap_class,
+                     farnsworth=symbols.farnsworth)
+    if unit is None:
+        return symbols
+    f_wpm = symbols.farnsworth_wpm
+    if symbols.farnsworth:
+        gaps = symbols.start_s[1:] - symbols.end_s[:-1]
+        char_gaps = gaps[symbols.gap_class == CHARACTER]
+        if char_gaps.size:
+            f_wpm = farnsworth_wpm(1.2 / unit, float(np.median(char_gaps)))
+    return replace(symbols, dot_s=unit, farnsworth_wpm=f_wpm)
 
 
 def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
