@@ -530,13 +530,14 @@ def _path_score(segments: list[Segment], lat: _Lattice, track: _Track, model: _M
 def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
     """Viterbi over several chunks at once: ``s_chunk`` (chunks, steps, durations, 2).
 
-    The forward pass keeps only the best scores, time last so that every maximum runs
-    over contiguous memory; the back-track finds again the few choices it needs.
+    The forward pass keeps only the best scores, the nodes last so that every maximum
+    over durations combines contiguous rows; the back-track finds again the few choices
+    it needs.
     """
     tree = _tree()
     n_c, n_t = s_chunk.shape[:2]
     d_mark, d_el, d_ch, d_wd = model.d_mark, model.d_el, model.d_ch, model.d_wd
-    lp_el = model.lp_el.astype(np.float32)
+    lp_el = model.lp_el.astype(np.float32)[:, None]
     lp_ch = model.lp_ch.astype(np.float32)
     lp_wd = model.lp_wd.astype(np.float32)
     p_min, block, pad = model.p_min, model.block, model.pad
@@ -544,7 +545,7 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
     inner = np.flatnonzero(tree.internal & (np.arange(n_nodes) > 0))  # element gap states
     n_in = inner.size
     full = np.flatnonzero(tree.complete)
-    prior = tree.log_prior[full].astype(np.float32)[None, :, None]
+    prior = tree.log_prior[full].astype(np.float32)
     mark_nodes = np.arange(1, n_nodes)
     n_dot = int(np.count_nonzero(~tree.dash[mark_nodes]))
     assert not tree.dash[1 : 1 + n_dot].any() and tree.dash[1 + n_dot :].all()
@@ -555,12 +556,12 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
     par = gap_pos[tree.parent[mark_nodes]]
     rows = pad + n_t
     neg = np.float32(-np.inf)
-    # best scores of paths ending at each step (the last axis) with:
-    m_all = np.full((n_c, n_nodes - 1, rows), neg, dtype=np.float32)  # a mark at the node
-    m_inner = np.full((n_c, n_in, rows), neg, dtype=np.float32)  # the same, inner nodes
+    # best scores of paths ending at each step (the middle axis) with:
+    m_all = np.full((n_c, rows, n_nodes - 1), neg, dtype=np.float32)  # a mark at the node
+    m_inner = np.full((n_c, rows, n_in), neg, dtype=np.float32)  # the same, inner nodes
     # a gap at the parent of each dot node, of each dash node
-    g_dot = np.full((n_c, n_dot, rows), neg, dtype=np.float32)
-    g_dash = np.full((n_c, n_nodes - 1 - n_dot, rows), neg, dtype=np.float32)
+    g_dot = np.full((n_c, rows, n_dot), neg, dtype=np.float32)
+    g_dash = np.full((n_c, rows, n_nodes - 1 - n_dot), neg, dtype=np.float32)
     c_score = np.full((n_c, rows), neg, dtype=np.float32)  # a completed character
     c_best = np.full((n_c, rows), neg, dtype=np.float32)  # its running maximum, for pauses
     c_best_at = np.zeros((n_c, rows), dtype=np.int64)
@@ -573,34 +574,34 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
     j_dash = np.flatnonzero(np.isfinite(model.lp_mark[:, 1]))
     off_dot = lane[:, None] - d_mark[None, j_dot]
     off_dash = lane[:, None] - d_mark[None, j_dash]
-    g_all = np.empty((n_c, n_in + 1, block), dtype=np.float32)
+    g_all = np.empty((n_c, block, n_in + 1), dtype=np.float32)
     options = np.empty((4, n_c, block), dtype=np.float32)
     options[0] = 0.0
     inner_col = inner - 1
     full_col = full - 1
-    s_dot = np.ascontiguousarray(s_chunk[:, :, j_dot, 0])[:, None]  # (chunks, 1, steps, d)
-    s_dash = np.ascontiguousarray(s_chunk[:, :, j_dash, 1])[:, None]
+    s_dot = np.ascontiguousarray(s_chunk[:, :, j_dot, 0])[..., None]  # (chunks, steps, d, 1)
+    s_dash = np.ascontiguousarray(s_chunk[:, :, j_dash, 1])[..., None]
     par_dot, par_dash = par[:n_dot], par[n_dot:]
     for t0 in range(pad, rows, block):
         b = min(block, rows - t0)
         r = slice(t0, t0 + b)
         # gaps: element gaps keep the node; the root takes character and word gaps, pauses
-        g_all[:, 1:, :b] = (np.take(m_inner, t0 + off_el[:b], axis=2) + lp_el).max(axis=3)
+        g_all[:, :b, 1:] = (np.take(m_inner, t0 + off_el[:b], axis=1) + lp_el).max(axis=2)
         options[1, :, :b] = (np.take(c_score, t0 + off_ch[:b], axis=1) + lp_ch).max(axis=2)
         options[2, :, :b] = (np.take(c_score, t0 + off_wd[:b], axis=1) + lp_wd).max(axis=2)
         options[3, :, :b] = c_best[:, t0 - p_min : t0 - p_min + b] + PAUSE_LOG_P
-        g_all[:, 0, :b] = options[:, :, :b].max(axis=0)
-        g_dot[:, :, r] = g_all[:, par_dot, :b]
-        g_dash[:, :, r] = g_all[:, par_dash, :b]
+        g_all[:, :b, 0] = options[:, :, :b].max(axis=0)
+        g_dot[:, r] = g_all[:, :b, par_dot]
+        g_dash[:, r] = g_all[:, :b, par_dash]
         # marks: one step down the tree from the node the gap before them left
         m = np.concatenate([
-            (np.take(g_dot, t0 + off_dot[:b], axis=2)  # (chunks, nodes, b, durations)
-             + s_dot[:, :, t0 - pad : t0 - pad + b]).max(axis=3),
-            (np.take(g_dash, t0 + off_dash[:b], axis=2)
-             + s_dash[:, :, t0 - pad : t0 - pad + b]).max(axis=3)], axis=1)
-        m_all[:, :, r] = m
-        m_inner[:, :, r] = m[:, inner_col]
-        c = (m[:, full_col] + prior).max(axis=1)
+            (np.take(g_dot, t0 + off_dot[:b], axis=1)  # (chunks, b, durations, nodes)
+             + s_dot[:, t0 - pad : t0 - pad + b]).max(axis=2),
+            (np.take(g_dash, t0 + off_dash[:b], axis=1)
+             + s_dash[:, t0 - pad : t0 - pad + b]).max(axis=2)], axis=2)
+        m_all[:, r] = m
+        m_inner[:, r] = m[:, :, inner_col]
+        c = (m[:, :, full_col] + prior).max(axis=2)
         c_score[:, r] = c
         run = np.maximum.accumulate(np.concatenate([c_best[:, t0 - 1 : t0], c], axis=1),
                                     axis=1)[:, 1:]
@@ -613,9 +614,10 @@ def _viterbi_chunks(s_chunk: np.ndarray, model: _Model) -> list[list[Segment]]:
         if not np.isfinite(c_score[ci, end]) or c_score[ci, end] <= 0.0:
             out.append([])
             continue
-        g_par = np.concatenate([g_dot[ci], g_dash[ci]])
+        g_par = np.concatenate([g_dot[ci], g_dash[ci]], axis=1)
         out.append(_back_track(end, model, s_chunk[ci], m_all[ci], m_inner[ci], g_par,
-                               c_score[ci], c_best[ci], c_best_at[ci], gap_pos, full, prior))
+                               c_score[ci], c_best[ci], c_best_at[ci], gap_pos, full,
+                               prior))
     return out
 
 
@@ -628,17 +630,17 @@ def _back_track(end, model, s, m_all, m_inner, g_par, c_score, c_best, c_best_at
     state, t, node = "c", end, 0
     while True:
         if state == "c":
-            node = int(full[np.argmax(m_all[full - 1, t] + prior[0, :, 0])])
+            node = int(full[np.argmax(m_all[t, full - 1] + prior)])
             state = "m"
         elif state == "m":
             d = model.d_mark
-            j = int(np.argmax(g_par[node - 1, t - d] + s[t - pad, :, int(tree.dash[node])]))
+            j = int(np.argmax(g_par[t - d, node - 1] + s[t - pad, :, int(tree.dash[node])]))
             segments.append(Segment(t - int(d[j]) - pad, t - pad, True, int(tree.dash[node]),
                                     node))
             t, node, state = t - int(d[j]), int(tree.parent[node]), "g"
         elif node:  # element gap
             d = model.d_el
-            j = int(np.argmax(m_inner[gap_pos[node] - 1, t - d] + model.lp_el))
+            j = int(np.argmax(m_inner[t - d, gap_pos[node] - 1] + model.lp_el))
             segments.append(Segment(t - int(d[j]) - pad, t - pad, False, ELEMENT, node))
             t, state = t - int(d[j]), "m"
         else:
