@@ -121,7 +121,7 @@ def _fmt(x: float | None) -> str:
     return "   n/a" if x is None else f"{x:6.2f}"
 
 
-def report(cn0_grid: np.ndarray, result: dict, png: str) -> None:
+def report(cn0_grid: np.ndarray, result: dict, png: str, title: str) -> None:
     for case, cers in result.items():
         print(f"\n{case}: CER (%) against C/N0")
         print("C/N0 dB-Hz " + "".join(f"{name:>11}" for name in DECODERS))
@@ -139,11 +139,11 @@ def report(cn0_grid: np.ndarray, result: dict, png: str) -> None:
         print(f"{case:22}{_fmt(x['sequence']):>9}{_fmt(x['threshold']):>10}"
               f"{_fmt(x['genie']):>8}{diff('sequence', 'genie'):>11}"
               f"{diff('threshold', 'genie'):>11}{diff('sequence', 'threshold'):>9}")
-    _plot(cn0_grid, result, png)
+    _plot(cn0_grid, result, png, title)
     print(f"\nfigure: {png}")
 
 
-def _plot(cn0_grid: np.ndarray, result: dict, png: str) -> None:
+def _plot(cn0_grid: np.ndarray, result: dict, png: str, title: str) -> None:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -160,6 +160,7 @@ def _plot(cn0_grid: np.ndarray, result: dict, png: str) -> None:
         ax.grid(True, which="both", alpha=0.3)
     axes[0].set_ylabel("character error rate")
     axes[0].legend()
+    fig.suptitle(title)
     fig.savefig(png, dpi=110)
 
 
@@ -201,10 +202,10 @@ def main() -> None:
     grid = np.arange(18.0, 38.0 + step / 2, step)
     t0 = time.perf_counter()
     result = sensitivity(grid, n, carrier_known=args.carrier_known, workers=args.workers)
+    title = f"carrier {'given' if args.carrier_known else 'unknown'}, speed unknown"
     print(f"\n{len(CASES)} cases x {grid.size} points x {n} messages in "
-          f"{time.perf_counter() - t0:.0f} s; carrier "
-          f"{'given' if args.carrier_known else 'unknown'}, speed unknown")
-    report(grid, result, args.png)
+          f"{time.perf_counter() - t0:.0f} s; {title}")
+    report(grid, result, args.png, f"okdecode: CER against C/N0, {title}")
 
 
 if __name__ == "__main__":
