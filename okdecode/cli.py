@@ -107,6 +107,34 @@ def _per_file(out: str, path: str, n_files: int) -> str:
     return str(o.with_name(f"{stem}-{tag}{suffix}"))
 
 
+def _receiver_options(command):
+    """The options every command that decodes takes (decode, verify), in one place."""
+    for option in reversed([
+        click.option("--carrier", type=float, default=None, metavar="HZ",
+                     help="Carrier frequency (absolute). Default: found from the spectrum."),
+        click.option("--channel", default=None, metavar="N|NAME",
+                     help="Channel index, or a trace's column name. Default: the channel "
+                          "with the strongest keyed signal."),
+        click.option("--wpm", type=float, default=None, metavar="N",
+                     help="Sending speed, if known. Default: measured."),
+        click.option("--decoder", type=click.Choice(["threshold", "sequence"]),
+                     default="threshold", show_default=True,
+                     help="threshold: adaptive threshold, element by element; sequence: "
+                          "the soft-decision sequence decoder (better on weak signals and "
+                          "hand keying, slower)."),
+        click.option("--rate", type=float, default=None, metavar="HZ",
+                     help="Sample rate, for raw I/Q, NumPy arrays and traces without a time "
+                          "column."),
+        click.option("--iq-format", default=None, metavar="TYPE",
+                     help="Raw I/Q sample type by SigMF name: cu8, ci8, ci16_le, cf32_le, ..."),
+        click.option("--center-hz", type=float, default=None, metavar="HZ",
+                     help="I/Q: the frequency of baseband 0 Hz, so reported frequencies are "
+                          "absolute."),
+    ]):
+        command = option(command)
+    return command
+
+
 def _reader_options(rate, iq_format, center_hz) -> dict:
     out = {}
     if rate is not None:
@@ -120,30 +148,13 @@ def _reader_options(rate, iq_format, center_hz) -> dict:
 
 @main.command(context_settings=_CONTEXT)
 @click.argument("files", nargs=-1, required=True, type=click.Path())
-@click.option("--carrier", type=float, default=None, metavar="HZ",
-              help="Carrier frequency (absolute). Default: found from the spectrum.")
-@click.option("--channel", default=None, metavar="N|NAME",
-              help="Channel index, or a trace's column name. Default: the channel with the "
-                   "strongest keyed signal.")
-@click.option("--wpm", type=float, default=None, metavar="N",
-              help="Sending speed, if known. Default: measured.")
-@click.option("--decoder", type=click.Choice(["threshold", "sequence"]), default="threshold",
-              show_default=True,
-              help="threshold: adaptive threshold, element by element; sequence: the "
-                   "soft-decision sequence decoder (better on weak signals and hand keying, "
-                   "slower).")
+@_receiver_options
 @click.option("--all-carriers", is_flag=True,
               help="Decode every keyed carrier found, each reported on its own.")
 @click.option("--annotate", "annotate_path", default=None, type=click.Path(),
               metavar="OUT.sigmf-meta",
               help="SigMF or raw I/Q input: write a copy of its metadata with one annotation "
                    "per decoded character (the input is never changed).")
-@click.option("--rate", type=float, default=None, metavar="HZ",
-              help="Sample rate, for raw I/Q, NumPy arrays and traces without a time column.")
-@click.option("--iq-format", default=None, metavar="TYPE",
-              help="Raw I/Q sample type by SigMF name: cu8, ci8, ci16_le, cf32_le, ...")
-@click.option("--center-hz", type=float, default=None, metavar="HZ",
-              help="I/Q: the frequency of baseband 0 Hz, so reported frequencies are absolute.")
 @click.option("--plot", "plot_path", default=None, type=click.Path(), metavar="OUT",
               help="Write a figure of the reception (.png, .svg or .pdf); with several files "
                    "each gets its own, OUT-<name>.png.")
@@ -307,22 +318,11 @@ def _verify_summary(v) -> str:
               help="Largest character error rate that still counts as received.")
 @click.option("--no-detect", is_flag=True,
               help="Skip the search for the expected keying below the decoding threshold.")
-@click.option("--carrier", type=float, default=None, metavar="HZ",
-              help="Carrier frequency (absolute). Default: found from the spectrum.")
-@click.option("--channel", type=int, default=None, metavar="N",
-              help="Channel index. Default: the channel with the strongest keyed signal.")
-@click.option("--wpm", type=float, default=None, metavar="N",
-              help="Sending speed, if known. Default: measured.")
-@click.option("--rate", type=float, default=None, metavar="HZ",
-              help="Sample rate, for raw I/Q, NumPy arrays and traces without a time column.")
-@click.option("--iq-format", default=None, metavar="TYPE",
-              help="Raw I/Q sample type by SigMF name: cu8, ci8, ci16_le, cf32_le, ...")
-@click.option("--center-hz", type=float, default=None, metavar="HZ",
-              help="I/Q: the frequency of baseband 0 Hz, so reported frequencies are absolute.")
+@_receiver_options
 @click.option("--json", "as_json", is_flag=True,
               help="One JSON object per file (JSON Lines) instead of the report.")
 def verify(files, expect_text, expect_file, alternatives, max_cer, no_detect, carrier, channel,
-           wpm, rate, iq_format, center_hz, as_json):
+           wpm, decoder, rate, iq_format, center_hz, as_json):
     """Check that recordings received the expected message, and how surely.
 
     Exit status 0 when every file received the message within --max-cer, 1 when any
@@ -348,11 +348,15 @@ def verify(files, expect_text, expect_file, alternatives, max_cer, no_detect, ca
         expected = expect_text
     status = 0
     options = _reader_options(rate, iq_format, center_hz)
+    index = _channel_index(channel)
+    if channel is not None and index is None:
+        options["columns"] = channel  # a trace's column, by name
     for path in files:
         try:
             result = verify_file(path, expected, max_cer=max_cer,
                                  expect_alternatives=alternatives, detect=not no_detect,
-                                 carrier_hz=carrier, channel=channel, wpm=wpm, **options)
+                                 carrier_hz=carrier, channel=index, wpm=wpm, decoder=decoder,
+                                 **options)
         except Exception as err:  # noqa: BLE001 - one line per file, the others go on
             _echo_err(fail_line(path, err))
             status = 2
