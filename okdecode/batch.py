@@ -25,7 +25,7 @@ import sqlite3
 import sys
 import time
 from collections.abc import Callable, Iterable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from pathlib import Path
 
@@ -58,7 +58,7 @@ STORE_NAME = "results.sqlite"
 #: Manifest columns read as reader options (passed to :func:`okdecode.capture.open_capture`).
 READER_COLUMNS = {"rate_hz": float, "iq_format": str, "center_hz": float}
 #: Manifest columns read as decode options (passed to the receiver).
-DECODE_COLUMNS = {"carrier_hz": float, "channel": int, "wpm": float}
+DECODE_COLUMNS = {"carrier_hz": float, "channel": int, "wpm": float, "decoder": str}
 #: Manifest columns with a meaning of their own; every other column is metadata.
 KNOWN_COLUMNS = {"file", "expect", "distance_m", *READER_COLUMNS, *DECODE_COLUMNS}
 
@@ -314,8 +314,8 @@ def read_manifest(manifest: str | os.PathLike, *, max_cer: float = 0.0) -> list[
                                  f"{mpath.parent.as_posix() or '.'}")
         reader = {k: _cell(src, line, k, row[k], t) if t is not str else row[k]
                   for k, t in READER_COLUMNS.items() if row.get(k)}
-        decode = {k: _cell(src, line, k, row[k], t) for k, t in DECODE_COLUMNS.items()
-                  if row.get(k)}
+        decode = {k: _cell(src, line, k, row[k], t) if t is not str else row[k]
+                  for k, t in DECODE_COLUMNS.items() if row.get(k)}
         distance = (_cell(src, line, "distance_m", row["distance_m"], float)
                     if row.get("distance_m") else None)
         expect = row.get("expect") or None
@@ -646,8 +646,10 @@ class _Bar:
 
 
 def load_jobs(source: str | os.PathLike, *, out: str | os.PathLike | None = None,
-              max_cer: float = 0.0) -> list[Job]:
+              max_cer: float = 0.0, decoder: str | None = None) -> list[Job]:
     """The jobs of an input: a manifest CSV file or a folder searched recursively.
+
+    ``decoder`` is the decision method of every job whose manifest row names none.
 
     Raises
     ------
@@ -662,14 +664,20 @@ def load_jobs(source: str | os.PathLike, *, out: str | os.PathLike | None = None
         if not jobs:
             raise ParameterError(source, "holds no recordings",
                                  expected="files ending in " + ", ".join(SUFFIXES))
-        return jobs
+        return [_with_decoder(j, decoder) for j in jobs]
     if p.is_file() and p.suffix.lower() == ".csv":
-        return read_manifest(p, max_cer=max_cer)
+        return [_with_decoder(j, decoder) for j in read_manifest(p, max_cer=max_cer)]
     if not p.exists():
         raise ParameterError(source, "no such file or folder",
                              expected="a folder of recordings or a manifest CSV")
     raise ParameterError(source, "is not a folder or a .csv manifest",
                          expected="a folder of recordings or a manifest CSV")
+
+
+def _with_decoder(job: Job, decoder: str | None) -> Job:
+    if decoder is None or "decoder" in job.decode_options:
+        return job
+    return replace(job, decode_options={**job.decode_options, "decoder": decoder})
 
 
 def _figure_name(job: Job, chash: str, shash: str) -> str:
@@ -751,7 +759,8 @@ def _dask(todo: list, scheduler: str, timeout_s: float) -> Iterator:
 
 
 def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | None = None,
-        scheduler: str | None = None, max_cer: float = 0.0, report: bool = True,
+        scheduler: str | None = None, max_cer: float = 0.0, decoder: str | None = None,
+        report: bool = True,
         figures: bool | None = None, progress: bool | None = None,
         on_result: Callable[[dict], None] | None = None,
         connect_timeout_s: float = 10.0) -> Summary:
@@ -772,6 +781,9 @@ def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | Non
         recordings and ``out`` must be reachable from its workers at the same paths).
     max_cer : float
         Largest character error rate counted as received (0: exact).
+    decoder : str, optional
+        Decision method (``"threshold"`` or ``"sequence"``) of every recording whose
+        manifest row names none; default the receiver's.
     report : bool
         Write ``report.html``.
     figures : bool, optional
@@ -805,7 +817,7 @@ def run(source: str | os.PathLike, out: str | os.PathLike, *, workers: int | Non
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise ParameterError("--workers", f"{workers!r}", expected="a count >= 1")
     out_dir = Path(out)
-    jobs = load_jobs(source, out=out_dir, max_cer=max_cer)
+    jobs = load_jobs(source, out=out_dir, max_cer=max_cer, decoder=decoder)
     try:
         out_dir.mkdir(parents=True, exist_ok=True)
     except OSError as err:

@@ -382,16 +382,19 @@ def verify(files, expect_text, expect_file, alternatives, max_cer, no_detect, ca
                    "workers at the same paths.")
 @click.option("--max-cer", type=float, default=0.0, show_default=True, metavar="X",
               help="Largest character error rate still counted as received.")
+@click.option("--decoder", type=click.Choice(["threshold", "sequence"]), default=None,
+              help="Decision method, where the manifest names none. Default: the "
+                   "receiver's (threshold).")
 @click.option("--figures/--no-figures", default=True, show_default=True,
               help="A figure per recording in DIR/figures, linked from the report.")
 @click.option("--json", "as_json", is_flag=True,
               help="One JSON object per recording as it is stored (JSON Lines), then the "
                    "campaign summary as a last object.")
-def batch(source, out_dir, workers, scheduler, max_cer, figures, as_json):
+def batch(source, out_dir, workers, scheduler, max_cer, decoder, figures, as_json):
     """Process a range-test campaign: INPUT is a folder (searched recursively) or a manifest
     CSV with a 'file' column (relative to the manifest) and optional expect, distance_m,
-    rate_hz, iq_format, center_hz, carrier_hz, channel, wpm (other columns are kept as
-    metadata).
+    rate_hz, iq_format, center_hz, carrier_hz, channel, wpm, decoder (other columns are
+    kept as metadata).
 
     Results go to DIR/results.sqlite one by one; a re-run skips what is stored, so an
     interrupted run resumes. Exit 0 when every recording was processed, 1 when some
@@ -409,7 +412,7 @@ def batch(source, out_dir, workers, scheduler, max_cer, figures, as_json):
 
     try:
         result = run(source, out_dir, workers=workers, scheduler=scheduler, max_cer=max_cer,
-                     figures=None if figures else False, on_result=shown)
+                     decoder=decoder, figures=None if figures else False, on_result=shown)
     except OkDecodeError as err:
         _echo_err(str(err))
         sys.exit(2)
