@@ -32,6 +32,10 @@ SELECT_SPAN_S = 120.0
 #: A keyed carrier spread wider than this is taken for a pulsed (spark) one, Hz. On-off
 #: keying at 50 WPM with 5 ms edges spreads a steady carrier over about 200 Hz.
 WIDE_CARRIER_HZ = 600.0
+#: Below the search's threshold, the sequence decoder tries the keying line of this many
+#: of the best-scoring bins, if their score reaches WEAK_MIN_SCORE.
+WEAK_TRIES = 3
+WEAK_MIN_SCORE = 2.0
 #: Widest band summed for a pulsed carrier, Hz (each side).
 MAX_WIDE_HALF_BAND_HZ = 12000.0
 
@@ -125,7 +129,11 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
             near = [c for c in found
                     if abs(c.frequency_hz - opts.carrier_hz) < 3 * spectrum.bin_hz]
             found = near or found
-        if not found and opts.carrier_hz is None:
+        if not found and opts.carrier_hz is None and opts.decoder == "sequence":
+            weak = _weak_target(capture, spectrum, chan, progress=progress)
+            if weak is not None:
+                targets.append(weak)
+        if not found and not targets and opts.carrier_hz is None:
             warnings.append("no keyed signal found")
             return [report.empty(file=capture.source, duration_s=capture.duration_s,
                                  rate_hz=capture.rate_hz, channel=chan, decoder=opts.decoder,
@@ -148,6 +156,53 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
         out.append(_decode_baseband(base, capture, opts, list(warnings),
                                     notes + list(target.notes) + more, spectrum, extra))
     return out
+
+
+def _weak_target(capture: Capture, spectrum: bb.Spectrum, chan: int | None, *,
+                 progress=None) -> _Target | None:
+    """A carrier under the search's threshold whose keying line is there, or None.
+
+    The sequence decoder reaches further down than the carrier search. The few bins
+    with the highest keying score are tuned (one more pass over the capture) and each
+    baseband is asked for the spectral line of its rising edges, whose false-alarm
+    probability on noise is known (:func:`okdecode.sequence.line_unit_s`); the best
+    line is taken if that probability, times the number of bins tried, is under 1 %.
+    """
+    from . import sequence
+
+    score = spectrum.score if chan is None else spectrum.score[chan : chan + 1]
+    freq = spectrum.frequency_hz
+    rel = freq - capture.center_hz
+    usable = np.ones(freq.size, dtype=bool)
+    if not capture.is_complex:
+        usable = (rel >= 100.0) & (rel <= capture.rate_hz / 2 - 2 * spectrum.bin_hz)
+    picks: list[tuple[int, int]] = []
+    for flat in np.argsort(-score, axis=None):
+        ch, b = np.unravel_index(flat, score.shape)
+        if score[ch, b] < WEAK_MIN_SCORE:
+            break
+        if not usable[b]:
+            continue
+        if any(abs(int(b) - pb) <= 3 for _, pb in picks):
+            continue
+        picks.append((int(ch) if chan is None else chan, int(b)))
+        if len(picks) >= WEAK_TRIES:
+            break
+    if not picks:
+        return None
+    tunings = [bb.Tuning(float(freq[b]), ch) for ch, b in picks]
+    best = None
+    for tuning, base in zip(tunings, bb.tune_many(capture, tunings, progress=progress),
+                            strict=True):
+        base = bb.shift(base, bb.fine_offset_hz(base, max_offset_hz=spectrum.bin_hz))
+        unit_s, p_fa = sequence.line_unit_s(base)
+        if unit_s is not None and (best is None or p_fa < best[0]):
+            best = (p_fa, replace(tuning, carrier_hz=base.carrier_hz))
+    if best is None or best[0] * len(picks) > 0.01:
+        return None
+    note = (f"carrier found by its keying line at {best[1].carrier_hz:.0f} Hz, under the "
+            f"search's threshold (false-alarm probability {best[0] * len(picks):.1g})")
+    return _Target(best[1], None, (note,))
 
 
 def _distinct(found: list[bb.Carrier]) -> list[bb.Carrier]:
