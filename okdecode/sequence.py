@@ -315,8 +315,11 @@ def track_amplitude(baseband: Baseband, start_s: np.ndarray, end_s: np.ndarray,
     grid = np.arange(time_s[0], time_s[-1] + step_s, step_s)
     where = np.clip(np.round((mid - grid[0]) / step_s).astype(np.int64), 0, grid.size - 1)
     kernel = np.exp(-0.5 * (np.arange(-16, 17) / 4.0) ** 2)  # +-4 half-widths
-    smooth = [np.convolve(np.bincount(where, weights=v, minlength=grid.size), kernel, "same")
-              for v in (num, den, np.ones(num.size))]
+    # the centred part of the full convolution: as long as the grid even when the grid is
+    # shorter than the kernel (where numpy's "same" would return the kernel's length)
+    half = kernel.size // 2
+    smooth = [np.convolve(np.bincount(where, weights=v, minlength=grid.size), kernel)
+              [half : half + grid.size] for v in (num, den, np.ones(num.size))]
     a2 = smooth[0] / np.maximum(smooth[1], 1e-300)
     strong = np.sqrt(np.maximum(a2, 0.0))
     # far from every mark the weights vanish: hold the global estimate there

@@ -201,3 +201,12 @@ def test_chunked_decode_equals_one_pass(monkeypatch):
     monkeypatch.setattr(sequence, "CHUNK_UNITS", 10**6)
     whole = sequence.decode_reception_text(r)
     assert chunked == whole
+
+
+def test_a_recording_shorter_than_the_amplitude_kernel_decodes():
+    # regression: a 3.5 s recording made the amplitude track's grid shorter than its
+    # smoothing kernel, and numpy's "same" convolution then returned the kernel's length
+    rec = synth("XQ7ZB", wpm=25, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=35.0, seed=1,
+                lead_s=0.1, tail_s=0.1)
+    got = decode_array(rec.samples, rec.rate_hz, decoder="sequence")
+    assert got.text == rec.truth.text
