@@ -31,6 +31,7 @@ from okdecode import sequence  # noqa: E402
 from okdecode.receiver import decode_array  # noqa: E402
 from okdecode.synth import synth  # noqa: E402
 from okdecode.text import canonical  # noqa: E402
+from okdecode.verify import edit_distance  # noqa: E402
 
 CASES = {
     "12 WPM": {"wpm": 12.0},
@@ -52,17 +53,6 @@ def message(index: int) -> str:
     return " ".join(groups)
 
 
-def levenshtein(a: str, b: str) -> int:
-    """Edit distance (insertions, deletions, substitutions of one character each)."""
-    prev = list(range(len(b) + 1))
-    for i, ca in enumerate(a, start=1):
-        cur = [i]
-        for j, cb in enumerate(b, start=1):
-            cur.append(min(prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (ca != cb)))
-        prev = cur
-    return prev[-1]
-
-
 def _one(job: tuple[str, float, int, bool]) -> tuple[str, float, int, dict, object]:
     """Decode one recording three ways; the genie's slots come back for its threshold."""
     case, cn0_dbhz, index, carrier_known = job
@@ -73,7 +63,7 @@ def _one(job: tuple[str, float, int, bool]) -> tuple[str, float, int, dict, obje
     options = {"carrier_hz": rec.truth.scenario.carrier_hz} if carrier_known else {}
     r = decode_array(rec.samples, rec.rate_hz, **options)
     texts = {"threshold": r.text, "sequence": sequence.decode_reception_text(r)}
-    errors = {name: levenshtein(canonical(t), truth) for name, t in texts.items()}
+    errors = {name: edit_distance(canonical(t), truth) for name, t in texts.items()}
     return case, cn0_dbhz, len(truth), errors, (genie.measure(rec), truth)
 
 
@@ -109,7 +99,7 @@ def sensitivity(cn0_grid: np.ndarray, n_messages: int, *, carrier_known: bool,
     for key, parts in slots.items():
         # the genie's one fixed threshold: the best over all slots of the point
         b = genie.best_fixed_threshold([p[0] for p in parts])
-        errs[("genie",) + key] = sum(levenshtein(genie.text(s, b), t) for s, t in parts)
+        errs[("genie",) + key] = sum(edit_distance(genie.text(s, b), t) for s, t in parts)
     out: dict[str, dict[str, np.ndarray]] = {}
     for case in CASES:
         out[case] = {name: np.array([errs[(name, case, float(c))] / chars[(case, float(c))]

@@ -15,18 +15,9 @@ from okdecode.marks import Marks
 from okdecode.receiver import decode_array
 from okdecode.symbols import CHARACTER, ELEMENT, WORD, Symbols
 from okdecode.synth import key, synth
+from okdecode.verify import edit_distance
 
 MODERATE_CN0_DBHZ = 30.0
-
-
-def _edit_distance(a: str, b: str) -> int:
-    prev = list(range(len(b) + 1))
-    for i, ca in enumerate(a, start=1):
-        cur = [i]
-        for j, cb in enumerate(b, start=1):
-            cur.append(min(prev[j] + 1, cur[j - 1] + 1, prev[j - 1] + (ca != cb)))
-        prev = cur
-    return prev[-1]
 
 
 def _both(rec) -> tuple[str, str]:
@@ -90,8 +81,8 @@ def test_sequence_not_worse_than_threshold_near_its_limit(wpm, cn0_dbhz):
         rec = synth(sent, wpm=wpm, cn0_dbhz=cn0_dbhz, seed=100 + seed)
         thr, seq = _both(rec)
         n_chars += len(rec.truth.text)
-        errors["threshold"] += _edit_distance(text.canonical(thr), rec.truth.text)
-        errors["sequence"] += _edit_distance(text.canonical(seq), rec.truth.text)
+        errors["threshold"] += edit_distance(text.canonical(thr), rec.truth.text)
+        errors["sequence"] += edit_distance(text.canonical(seq), rec.truth.text)
     cer = {k: v / n_chars for k, v in errors.items()}
     # the margin: the sequence decoder must gain at least 2 points of CER on the threshold
     # path where that one is in trouble, or both must be nearly clean
