@@ -129,7 +129,7 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
             near = [c for c in found
                     if abs(c.frequency_hz - opts.carrier_hz) < 3 * spectrum.bin_hz]
             found = near or found
-        if not found and opts.carrier_hz is None and opts.decoder == "sequence":
+        if not found and opts.carrier_hz is None:
             weak = _weak_target(capture, spectrum, chan, progress=progress)
             if weak is not None:
                 targets.append(weak)
@@ -162,7 +162,7 @@ def _weak_target(capture: Capture, spectrum: bb.Spectrum, chan: int | None, *,
                  progress=None) -> _Target | None:
     """A carrier under the search's threshold whose keying line is there, or None.
 
-    The sequence decoder reaches further down than the carrier search. The few bins
+    Both decoders reach further down than the carrier search does. The few bins
     with the highest keying score are tuned (one more pass over the capture) and each
     baseband is asked for the spectral line of its rising edges, whose false-alarm
     probability on noise is known (:func:`okdecode.sequence.line_unit_s`); the best
