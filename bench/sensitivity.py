@@ -61,8 +61,9 @@ def _one(job: tuple[str, float, int, bool]) -> tuple[str, float, int, dict, obje
     rec = synth(sent, cn0_dbhz=cn0_dbhz, seed=seed, **CASES[case])
     truth = canonical(rec.truth.text)
     options = {"carrier_hz": rec.truth.scenario.carrier_hz} if carrier_known else {}
-    r = decode_array(rec.samples, rec.rate_hz, **options)
-    texts = {"threshold": r.text, "sequence": sequence.decode_reception_text(r)}
+    # each decoder as a user runs it (okdecode decode --decoder ...)
+    texts = {name: decode_array(rec.samples, rec.rate_hz, decoder=name, **options).text
+             for name in ("threshold", "sequence")}
     errors = {name: edit_distance(canonical(t), truth) for name, t in texts.items()}
     return case, cn0_dbhz, len(truth), errors, (genie.measure(rec), truth)
 
