@@ -332,10 +332,8 @@ def _suppress(start_s, end_s, *, min_mark_s, min_space_s):
         gaps = start_s[1:] - end_s[:-1]
         keep = np.concatenate([[True], gaps >= min_space_s])
         # a bridged space joins a mark to the one before it
-        group = np.cumsum(keep) - 1
         start_s = start_s[keep]
         end_s = np.maximum.reduceat(end_s, np.flatnonzero(keep)) if end_s.size else end_s
-        del group
     if start_s.size and min_mark_s > 0:
         keep = (end_s - start_s) >= min_mark_s
         start_s, end_s = start_s[keep], end_s[keep]

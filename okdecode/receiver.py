@@ -53,9 +53,8 @@ class Options:
     def checked(cls, source: str, *, carrier_hz=None, channel=None, wpm=None,
                 decoder="threshold") -> Options:
         if carrier_hz is not None:
+            # its band is checked against the capture's when tuning
             carrier_hz = _number(source, "carrier", carrier_hz, "Hz")
-            if carrier_hz <= 0 and carrier_hz != carrier_hz:  # pragma: no cover
-                raise ParameterError(source, "carrier is not a number")
         if channel is not None:
             if isinstance(channel, bool) or not isinstance(channel, (int, np.integer)) or (
                     channel < 0):
