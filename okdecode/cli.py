@@ -150,7 +150,8 @@ def _reader_options(rate, iq_format, center_hz) -> dict:
 @click.argument("files", nargs=-1, required=True, type=click.Path())
 @_receiver_options
 @click.option("--all-carriers", is_flag=True,
-              help="Decode every keyed carrier found, each reported on its own.")
+              help="Decode every keyed carrier found, each reported on its own, in the "
+                   "order they were heard.")
 @click.option("--annotate", "annotate_path", default=None, type=click.Path(),
               metavar="OUT.sigmf-meta",
               help="SigMF or raw I/Q input: write a copy of its metadata with one annotation "

@@ -91,13 +91,17 @@ def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
 def decode_all_carriers(capture: Capture, *, channel: int | None = None,
                         wpm: float | None = None, decoder: str = "threshold",
                         progress=None) -> list[report.Reception]:
-    """Decode every keyed carrier the search finds, each on its own, strongest first.
+    """Decode every keyed carrier the search finds, each on its own, in order of time.
 
-    The capture is read twice in all (the search, then one pass that tunes to every
-    carrier at once). A recording without any keyed carrier gives one empty Reception.
+    The receptions come in the order their first characters were heard (stations that
+    follow one another read in turn); ``carrier_rank`` in each gives its rank by
+    strength, 0 the strongest. The capture is read twice in all (the search, then one
+    pass that tunes to every carrier at once). A recording without any keyed carrier
+    gives one empty Reception.
     """
-    return _decode(capture, carrier_hz=None, channel=channel, wpm=wpm, decoder=decoder,
-                   progress=progress, all_carriers=True)
+    found = _decode(capture, carrier_hz=None, channel=channel, wpm=wpm, decoder=decoder,
+                    progress=progress, all_carriers=True)
+    return sorted(found, key=lambda r: r.characters[0].start_s if r.characters else math.inf)
 
 
 @dataclass(frozen=True)
