@@ -960,8 +960,8 @@ def drift_track_hz(baseband: Baseband, *, max_offset_hz: float = 150.0) -> np.nd
 
     Notes
     -----
-    Short-time spectra of ``DRIFT_FRAME_S`` (Hann, half overlapping, zero-padded four
-    times) give each frame's strongest line within ``±max_offset_hz``; frames whose line
+    Short-time spectra of ``DRIFT_FRAME_S`` (Hann, not overlapping, zero-padded twice)
+    give each frame's strongest line within ``±max_offset_hz``; frames whose line
     stands less than 15 dB above the frame's median bin are skipped (spaces, pauses).
     From the strongest frame the track grows both ways, each frame taking its strongest
     line within the slew allowed since the last accepted one (so a neighbouring
@@ -975,12 +975,12 @@ def drift_track_hz(baseband: Baseband, *, max_offset_hz: float = 150.0) -> np.nd
     nper = int(DRIFT_FRAME_S * rate)
     if z.size < 4 * nper:
         return None
-    f, t, spec = signal.stft(z, fs=rate, nperseg=nper, noverlap=nper // 2, nfft=4 * nper,
+    f, t, spec = signal.stft(z, fs=rate, nperseg=nper, noverlap=0, nfft=2 * nper,
                              return_onesided=False, boundary=None, padded=False)
     f = np.fft.fftshift(f)
-    power = np.abs(np.fft.fftshift(spec, axes=0)) ** 2
     band = np.abs(f) <= max_offset_hz
-    f, power = f[band], power[band]
+    spec = np.fft.fftshift(spec, axes=0)[band]
+    f, power = f[band], spec.real**2 + spec.imag**2
     floor = np.median(power, axis=0)
     peak = np.argmax(power, axis=0)
     strong = power[peak, np.arange(t.size)] > DRIFT_LINE_OVER_MEDIAN * floor
@@ -990,18 +990,21 @@ def drift_track_hz(baseband: Baseband, *, max_offset_hz: float = 150.0) -> np.nd
     track = np.full(t.size, np.nan)
     first = int(np.argmax(np.where(strong, power[peak, np.arange(t.size)], 0.0)))
     track[first] = f[peak[first]]
+    # only frames whose strongest line is clear of the noise can take a line at all
+    frames = np.flatnonzero(strong)
+    df = f[1] - f[0]
     for direction in (1, -1):
         last_k, last_f = first, track[first]
-        k = first + direction
-        while 0 <= k < t.size:
+        for k in (frames[frames > first] if direction > 0 else frames[frames < first][::-1]):
             reach = min(DRIFT_SLEW_HZ_PER_S * hop_s * abs(k - last_k), 30.0) + 2.0
-            near = np.abs(f - last_f) <= reach
-            col = np.where(near, power[:, k], 0.0)
-            j = int(np.argmax(col))
-            if col[j] > DRIFT_LINE_OVER_MEDIAN * floor[k]:
+            lo = max(0, int(np.searchsorted(f, last_f - reach - 0.5 * df)))
+            hi = int(np.searchsorted(f, last_f + reach + 0.5 * df))
+            if hi <= lo:
+                continue
+            j = lo + int(np.argmax(power[lo:hi, k]))
+            if power[j, k] > DRIFT_LINE_OVER_MEDIAN * floor[k]:
                 track[k] = f[j]
                 last_k, last_f = k, f[j]
-            k += direction
     ok = np.flatnonzero(~np.isnan(track))
     if ok.size < 3:
         return None
