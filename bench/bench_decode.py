@@ -17,7 +17,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -32,15 +31,35 @@ with soundfile.SoundFile(sys.argv[1]) as f:
 """
 
 
+# runs a Python command line and, at its exit, writes its own peak RSS (KiB) to stderr:
+# RUSAGE_CHILDREN would give the largest of all children so far, not this one's
+_PEAK = """
+import resource, runpy, sys
+args = sys.argv[1:]
+try:
+    if args[0] == "-c":
+        sys.argv = ["-c"] + args[2:]
+        exec(compile(args[1], "<bench>", "exec"), {"__name__": "__main__"})
+    else:
+        sys.argv = args[2:]
+        runpy.run_module(args[1], run_name="__main__", alter_sys=True)
+finally:
+    sys.stderr.write(f"peak-kib {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}\\n")
+"""
+
+
 def run(cmd: list[str]) -> tuple[float, float, str]:
-    """Wall time (s), peak RSS of the child (MB) and stdout of one command."""
-    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    """Wall time (s), peak RSS (MB) and stdout of one Python command (``python -m ...``
+    or ``python -c ...``), in a fresh process."""
+    assert cmd[0] == sys.executable and cmd[1] in ("-m", "-c")
     t0 = time.perf_counter()
-    out = subprocess.run(cmd, check=True, capture_output=True, text=True).stdout
+    proc = subprocess.run([sys.executable, "-c", _PEAK, *cmd[1:]], capture_output=True,
+                          text=True)
     wall = time.perf_counter() - t0
-    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
-    # ru_maxrss of children is the largest of any child so far, in KiB on Linux
-    return wall, max(peak, before) / 1024, out
+    if proc.returncode != 0:
+        raise RuntimeError(proc.stderr)
+    peak = [line for line in proc.stderr.splitlines() if line.startswith("peak-kib ")]
+    return wall, int(peak[-1].split()[1]) / 1024, proc.stdout
 
 
 def best_of(cmd: list[str], n: int) -> tuple[float, float, str]:
@@ -64,6 +83,7 @@ def main() -> None:
     t_help = min(run(exe + ["--help"])[0] for _ in range(3))
     t_import = min(run([sys.executable, "-c", "import okdecode"])[0] for _ in range(3))
     t_python = min(run([sys.executable, "-c", "pass"])[0] for _ in range(3))
+    # (each includes the small wrapper that reads the peak memory)
     print(f"start-up: okdecode --help {t_help:.3f} s, import okdecode {t_import:.3f} s "
           f"(bare python {t_python:.3f} s)")
     for rate_hz in (8000.0, 48000.0):

@@ -934,8 +934,9 @@ def _power_envelope(baseband: Baseband, n: int, step: int, source: str) -> Envel
 DRIFT_FRAME_S = 0.5
 #: Largest change of frequency between tracked frames, Hz per s.
 DRIFT_SLEW_HZ_PER_S = 40.0
-#: A drift smaller than this everywhere is left alone, Hz.
-DRIFT_MIN_HZ = 3.0
+#: A drift smaller than this everywhere is left alone, Hz: the line of a half-second
+#: frame, half filled by slow keying, wanders by a few hertz on its own.
+DRIFT_MIN_HZ = 6.0
 #: A frame shows the carrier when its line stands this far above the frame's median
 #: bin: 15 dB, which noise alone (exponential power, median ln 2 of the mean) passes
 #: with a probability of 1e-9 per bin.
@@ -965,7 +966,7 @@ def drift_track_hz(baseband: Baseband, *, max_offset_hz: float = 150.0) -> np.nd
     stands less than 15 dB above the frame's median bin are skipped (spaces, pauses).
     From the strongest frame the track grows both ways, each frame taking its strongest
     line within the slew allowed since the last accepted one (so a neighbouring
-    station cannot capture it), and a running median of five accepted frames smooths
+    station cannot capture it), and a running median of seven accepted frames smooths
     it before it is interpolated to every sample.
     """
     from scipy import signal
@@ -1009,7 +1010,7 @@ def drift_track_hz(baseband: Baseband, *, max_offset_hz: float = 150.0) -> np.nd
     if ok.size < 3:
         return None
     smooth = np.median(np.lib.stride_tricks.sliding_window_view(
-        np.pad(track[ok], 2, mode="edge"), 5), axis=1)
+        np.pad(track[ok], 3, mode="edge"), 7), axis=1)
     if np.max(np.abs(smooth - np.median(smooth))) < DRIFT_MIN_HZ:
         return None
     times = baseband.start_s + np.arange(z.size) / rate
