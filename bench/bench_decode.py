@@ -41,7 +41,7 @@ try:
         sys.argv = ["-c"] + args[2:]
         exec(compile(args[1], "<bench>", "exec"), {"__name__": "__main__"})
     else:
-        sys.argv = args[2:]
+        sys.argv = [args[1]] + args[2:]
         runpy.run_module(args[1], run_name="__main__", alter_sys=True)
 finally:
     sys.stderr.write(f"peak-kib {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}\\n")
