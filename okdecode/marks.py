@@ -32,7 +32,7 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -223,13 +223,15 @@ def find(envelope: Envelope, *, window_s: float = 2.0, hysteresis_db: float = 0.
     if decided is None:
         return Marks(empty, empty, empty, empty, lv, envelope.source)
     if levels_ is None:
-        for _ in range(2):
-            # decision-directed: each mark found tells the level where it stands, so
-            # a fade is followed mark by mark rather than window by window
-            tracked = _mark_levels(envelope, lv, *decided)
-            if tracked is None:
-                break
-            lv = tracked
+        tracked = _mark_levels(envelope, lv, *decided)
+        if tracked is not None:
+            # the marks found tell the level where they stand; in a long pause the window
+            # levels may sag towards the noise (a window of noise alone can pass its own
+            # test for marks), so the threshold is kept at least half of the one the marks
+            # imply there. Half, not all: the marks' levels are smoothed over several
+            # marks and lag behind a fade, which the windows follow
+            from_marks = np.interp(lv.time_s, tracked.time_s, tracked.threshold)
+            lv = replace(lv, threshold=np.maximum(lv.threshold, 0.5 * from_marks))
             decided = _decide(envelope, lv, hysteresis_db) or decided
     start_s, end_s = _suppress(*decided, min_mark_s=min_mark_s, min_space_s=min_space_s)
     lvl, snr = _mark_stats(envelope.magnitude, envelope.time_s, start_s, end_s, lv,
