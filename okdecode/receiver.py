@@ -111,6 +111,7 @@ class _Target:
     tuning: bb.Tuning
     found: bb.Carrier | None
     notes: tuple[str, ...]
+    baseband: bb.Baseband | None = None  # already tuned while it was being found
 
 
 def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
@@ -149,7 +150,11 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
     if not targets:
         targets.append(_Target(bb.Tuning(float(opts.carrier_hz), 0 if chan is None else chan),
                                None, ()))
-    bases = bb.tune_many(capture, [t.tuning for t in targets], progress=progress)
+    # one pass tunes every target not tuned already
+    todo = [t for t in targets if t.baseband is None]
+    tuned = iter(bb.tune_many(capture, [t.tuning for t in todo], progress=progress)
+                 if todo else [])
+    bases = [t.baseband if t.baseband is not None else next(tuned) for t in targets]
     out = []
     for rank, (target, base) in enumerate(zip(targets, bases, strict=True)):
         extra = {"spark_rate_hz": None, "ringing_hz": None, "drift_hz": None}
@@ -200,12 +205,12 @@ def _weak_target(capture: Capture, spectrum: bb.Spectrum, chan: int | None, *,
         base = bb.shift(base, bb.fine_offset_hz(base, max_offset_hz=spectrum.bin_hz))
         unit_s, p_fa = sequence.line_unit_s(base)
         if unit_s is not None and (best is None or p_fa < best[0]):
-            best = (p_fa, replace(tuning, carrier_hz=base.carrier_hz))
+            best = (p_fa, replace(tuning, carrier_hz=base.carrier_hz), base)
     if best is None or best[0] * len(picks) > 0.01:
         return None
     note = (f"carrier found by its keying line at {best[1].carrier_hz:.0f} Hz, under the "
             f"search's threshold (false-alarm probability {best[0] * len(picks):.1g})")
-    return _Target(best[1], None, (note,))
+    return _Target(best[1], None, (note,), baseband=best[2])
 
 
 def _distinct(found: list[bb.Carrier]) -> list[bb.Carrier]:

@@ -63,6 +63,12 @@ def check_finite(block: np.ndarray, source: str, offset: int) -> None:
         raise CaptureError(source, f"sample {index} is not finite", expected="finite samples")
 
 
+def read_failure(source: str, index: int, err: Exception) -> CaptureError:
+    """The CaptureError for a read that failed part way (an OSError or ValueError)."""
+    return CaptureError(source, f"read failed after {index} samples ({err})",
+                        expected="a file that does not change while it is read")
+
+
 def from_array(
     samples: np.ndarray, rate_hz: float, *, center_hz: float = 0.0, source: str = "<array>"
 ) -> Capture:

@@ -25,7 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import CaptureError, ParameterError
-from . import Capture, check_finite, check_rate
+from . import Capture, check_finite, check_rate, read_failure
 
 _NAME = re.compile(r"^(?P<kind>[cr])(?P<base>[fiu])(?P<bits>8|16|32|64)(?:_(?P<order>le|be))?$")
 
@@ -179,11 +179,10 @@ def block_reader(path: Path, fmt: SampleFormat, segments: Sequence[tuple[int, in
                             check_finite(block, source, index)
                         index += count
                         yield block
-        except (OSError, ValueError) as err:
-            if isinstance(err, CaptureError):
-                raise
-            raise CaptureError(source, f"read failed after {index} samples ({err})",
-                               expected="a file that does not change while it is read") from err
+        except CaptureError:
+            raise
+        except (OSError, ValueError) as err:  # CaptureError is a ValueError: caught first
+            raise read_failure(source, index, err) from err
 
     return reader
 

@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import CaptureError
-from . import Capture, check_finite, check_rate
+from . import Capture, check_finite, check_rate, read_failure
 
 #: Beyond this many columns, an array with more columns than rows is taken to be stored
 #: channels-first, which okdecode does not guess at.
@@ -132,11 +132,10 @@ def read_npy(path: Path, *, source: str, rate_hz: float | None = None,
                     check_finite(block, source, start)
                     index = start + count
                     yield block
-        except (OSError, ValueError) as err:
-            if isinstance(err, CaptureError):
-                raise
-            raise CaptureError(source, f"read failed after {index} samples ({err})",
-                               expected="a file that does not change while it is read") from err
+        except CaptureError:
+            raise
+        except (OSError, ValueError) as err:  # CaptureError is a ValueError: caught first
+            raise read_failure(source, index, err) from err
 
     kind = "complex I/Q" if is_complex else "real samples"
     return Capture(source=source, rate_hz=rate, n_samples=n_samples, n_channels=n_channels,
