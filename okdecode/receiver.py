@@ -296,7 +296,7 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
     if syms.dot_s is not None:
         # re-tune: the moving average matched to the dot, then once more if it moved
         for _ in range(2):
-            dot = syms.dot_s
+            dot = _shortest_unit_s(syms)
             if abs(env.filter_s / dot - 1) < 0.1:
                 break
             trial = _run(base, source, filter_s=dot, wpm=opts.wpm, density=density)
@@ -333,6 +333,18 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
                            duration_s=capture.duration_s, rate_hz=capture.rate_hz,
                            channel=base.channel, decoder=opts.decoder, warnings=warnings,
                            notes=notes, spectrum=spectrum, extra=extra)
+
+
+def _shortest_unit_s(syms: sy.Symbols) -> float:
+    """The unit to match the envelope's filter to, s: the recording's, or a faster one.
+
+    Where the speed changes, a filter matched to the slower part merges the faster
+    part's marks; the fastest sustained part (the 10th percentile of the marks' own
+    units) sets the filter then, at a few dB less SNR for the slower part.
+    """
+    assert syms.dot_s is not None
+    fast = float(np.quantile(syms.local_dot_s, 0.1)) if syms.n_marks else syms.dot_s
+    return fast if fast < 0.75 * syms.dot_s else syms.dot_s
 
 
 def _busiest(base: bb.Baseband, density: np.ndarray, *, span_s: float

@@ -14,7 +14,10 @@ and end-to-end intervals inside words (:func:`_fit_unit`), which uses every edge
 *Speed.* ``wpm = 1.2 / u`` by the PARIS standard word of 50 units (common practice;
 ITU-R M.1677-1 gives the 1:3 and 1:3:7 ratios). Slow changes are followed by a running
 median of local unit estimates (11 elements), so classes are judged against the speed
-in force.
+in force. An abrupt change is found first (:func:`_local_reference`): windows of the
+durations searched as the whole recording is, the change placed at the mark that best
+splits the durations into the old unit and the new; each run of one speed then has its
+own running median.
 
 *Classes.* Marks split into dots and dashes at the geometric mean of the two clusters
 found on log duration (2-means); spaces under 2 local units are element gaps, and the
@@ -138,18 +141,97 @@ def coarse_unit_s(marks_s: np.ndarray, spaces_s: np.ndarray) -> float | None:
     # a few thousand durations fix the unit; evenly spaced ones keep a long file's
     # search as cheap as a short one's
     marks_s, spaces_s = marks_s[:: 1 + marks_s.size // 2000], spaces_s[:: 1 + spaces_s.size // 2000]
-    grid = np.exp(np.linspace(math.log(0.008), math.log(1.5), 400))
-    lg = np.log(grid)[:, None]
-    cap = math.log(1.8)
-    lm = np.log(marks_s)[None, :] - lg
-    cost = _capped_cost(np.minimum(np.abs(lm), np.abs(lm - math.log(3))), cap).sum(axis=1)
-    if spaces_s.size:
-        ls = np.log(spaces_s)[None, :] - lg
-        e = np.minimum(np.abs(ls), np.abs(ls - math.log(3)))
-        # any space of 4.5 units or more may be a (stretched) character or word gap
-        e = np.where(ls > math.log(4.5), 0.5 * cap, e)
-        cost = cost + _capped_cost(e, cap).sum(axis=1)
+    grid = _grid()
+    durations = np.concatenate([marks_s, spaces_s])
+    is_mark = np.arange(durations.size) < marks_s.size
+    cost = _unit_costs(durations, is_mark, np.log(grid)[:, None]).sum(axis=1)
     return float(grid[int(np.argmin(cost))])
+
+
+#: Durations (marks and spaces) per block of the local unit search, and blocks per window.
+LOCAL_BLOCK, LOCAL_WINDOW = 16, 5
+#: A window's own unit replaces the recording's when it is this far from it and explains
+#: the window's durations with at most this fraction of the cost at the recording's unit.
+LOCAL_MIN_RATIO, LOCAL_MAX_COST = 1.25, 0.6
+
+
+def _unit_costs(durations: np.ndarray, is_mark: np.ndarray, lg: np.ndarray) -> np.ndarray:
+    """Capped log-error cost of each duration at each grid unit, shape (grid, n)."""
+    cap = math.log(1.8)
+    ld = np.log(durations)[None, :] - lg
+    e = np.minimum(np.abs(ld), np.abs(ld - math.log(3)))
+    # any space of 4.5 units or more may be a (stretched) character or word gap
+    e = np.where(~is_mark[None, :] & (ld > math.log(4.5)), 0.5 * cap, e)
+    return _capped_cost(e, cap)
+
+
+def _grid() -> np.ndarray:
+    return np.exp(np.linspace(math.log(0.008), math.log(1.5), 400))
+
+
+def _local_reference(marks_s: np.ndarray, spaces_s: np.ndarray, u0: float) -> np.ndarray:
+    """The unit to judge each mark against: the recording's, or the local one (notes).
+
+    The durations, in time order, are cut into blocks of ``LOCAL_BLOCK``; each window of
+    ``LOCAL_WINDOW`` blocks is searched on the grid as :func:`coarse_unit_s` searches
+    the whole recording. Where a window's own unit differs from ``u0`` by more than
+    ``LOCAL_MIN_RATIO`` and explains its durations much better, an abrupt change of
+    speed has happened, and the marks of its middle block are judged against it.
+    """
+    n = marks_s.size
+    ref = np.full(n, u0)
+    durations = np.empty(2 * n - 1)
+    durations[0::2], durations[1::2] = marks_s, spaces_s
+    n_blocks = -(-durations.size // LOCAL_BLOCK)
+    if n_blocks < LOCAL_WINDOW or not np.all(durations > 0):
+        return ref
+    is_mark = np.zeros(durations.size, dtype=bool)
+    is_mark[0::2] = True
+    grid = _grid()
+    lg = np.log(grid)[:, None]
+    block_cost = np.zeros((grid.size, n_blocks))
+    block_of = np.arange(durations.size) // LOCAL_BLOCK
+    step = 256 * LOCAL_BLOCK  # bounded memory: 400 x 4096 costs at a time
+    for lo in range(0, durations.size, step):
+        sl = slice(lo, lo + step)
+        cost = _unit_costs(durations[sl], is_mark[sl], lg)
+        b = block_of[sl]
+        block_cost[:, b[0]: b[-1] + 1] += np.add.reduceat(
+            cost, np.flatnonzero(np.diff(b, prepend=b[0] - 1)), axis=1)
+    c = np.cumsum(np.pad(block_cost, ((0, 0), (1, 0))), axis=1)
+    half = LOCAL_WINDOW // 2
+    lo_b = np.clip(np.arange(n_blocks) - half, 0, n_blocks - LOCAL_WINDOW)
+    window = c[:, lo_b + LOCAL_WINDOW] - c[:, lo_b]
+    best = np.argmin(window, axis=0)
+    at_u0 = window[int(np.argmin(np.abs(np.log(grid / u0))))]
+    cols = np.arange(n_blocks)
+    local = grid[best]
+    changed = (np.abs(np.log(local / u0)) > math.log(LOCAL_MIN_RATIO)) & (
+        window[best, cols] < LOCAL_MAX_COST * at_u0)
+    block_ref = np.where(changed, local, u0)
+    # the mark where each change happens: between the blocks on either side of it, the
+    # split that explains the durations best, the left ones at the old unit and the
+    # right ones at the new
+    ref_d = np.repeat(block_ref, LOCAL_BLOCK)[: durations.size]
+    steps = np.flatnonzero(np.abs(np.diff(np.log(block_ref))) > math.log(LOCAL_MIN_RATIO))
+    for i, k in enumerate(steps):
+        a, b = block_ref[k], block_ref[k + 1]
+        # a window holds LOCAL_WINDOW blocks, so the change may lie a few blocks either
+        # side of the step; the search stops at the neighbouring steps
+        lo = max(k - half, steps[i - 1] + 1 if i else 0) * LOCAL_BLOCK
+        hi = min((k + half + 2) * LOCAL_BLOCK,
+                 (steps[i + 1] + 1) * LOCAL_BLOCK if i + 1 < steps.size else durations.size,
+                 durations.size)
+        span = durations[lo:hi]
+        cost = _unit_costs(span, is_mark[lo:hi], np.log(np.array([a, b]))[:, None])
+        left = np.concatenate([[0.0], np.cumsum(cost[0])])
+        right = np.concatenate([np.cumsum(cost[1][::-1])[::-1], [0.0]])
+        # splits just before a mark (even positions of the interleaved durations)
+        j = np.arange(0, span.size + 1)
+        j = j[(lo + j) % 2 == 0]
+        split = int(j[np.argmin((left + right)[j])])
+        ref_d[lo: lo + split], ref_d[lo + split: hi] = a, b
+    return ref_d[0::2]
 
 
 def _two_means(v: np.ndarray, iters: int = 30) -> tuple[float, float, np.ndarray]:
@@ -176,6 +258,27 @@ def _running_median(v: np.ndarray, k: int) -> np.ndarray:
     half = k // 2
     pad = np.pad(v, half, mode="reflect" if v.size > half else "edge")
     return np.median(np.lib.stride_tricks.sliding_window_view(pad, k), axis=1)[: v.size]
+
+
+def _track(start: np.ndarray, ref: np.ndarray, u_samples: np.ndarray,
+           u_times: np.ndarray) -> np.ndarray:
+    """Each mark's unit: a running median of 11 unit samples (sorted by time), s.
+
+    Runs of marks with one reference unit are tracked on their own, so that a change of
+    speed found by :func:`_local_reference` stays abrupt; a run without two samples of
+    its own keeps its reference.
+    """
+    local = ref.astype(float).copy()
+    cuts = np.flatnonzero(ref[1:] != ref[:-1]) + 1
+    for lo, hi in zip(np.concatenate([[0], cuts]), np.concatenate([cuts, [start.size]]),
+                      strict=True):
+        t_lo = start[lo]
+        t_hi = start[hi] if hi < start.size else np.inf
+        inside = (u_times >= t_lo) & (u_times < t_hi)
+        if inside.sum() >= 2:
+            track = _running_median(u_samples[inside], 11)
+            local[lo:hi] = np.interp(start[lo:hi], u_times[inside], track)
+    return local
 
 
 def _confidence(distance: np.ndarray, spread: float) -> np.ndarray:
@@ -263,8 +366,9 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
                        False, None, marks.source)
     u0 = 1.2 / wpm if wpm else coarse_unit_s(m, g)
     assert u0 is not None
+    ref = np.full(n, u0) if wpm else _local_reference(m, g, u0)
     # refine: the start-to-start time of a dot and the element gap after it is 2 units
-    r_m, r_g = m / u0, g / u0
+    r_m, r_g = m / ref, g / ref[:-1]
     is_dot0 = r_m < 2.0
     pair = is_dot0[:-1] & (r_g < 2.0)
     step = start[1:] - start[:-1]
@@ -274,14 +378,16 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
         dash_pair = (~is_dot0[:-1]) & (r_g < 2.0)
         u_samples = np.concatenate([u_samples, step[dash_pair] / 4.0])
         u_times = np.concatenate([u_times, start[:-1][dash_pair]])
-    ok = (u_samples > 0.6 * u0) & (u_samples < 1.6 * u0)
+        u_ref = np.concatenate([ref[:-1][pair], ref[:-1][dash_pair]])
+    else:
+        u_ref = ref[:-1][pair]
+    ok = (u_samples > 0.6 * u_ref) & (u_samples < 1.6 * u_ref)
     u_samples, u_times = u_samples[ok], u_times[ok]
     if u_samples.size >= 2:
         order = np.argsort(u_times)
         u_samples, u_times = u_samples[order], u_times[order]
         unit = float(np.median(u_samples))
-        track = _running_median(u_samples, 11)
-        local = np.interp(start, u_times, track)
+        local = _track(start, ref, u_samples, u_times)
     else:
         unit = float(u0)
         local = np.full(n, unit)

@@ -158,3 +158,22 @@ def test_no_marks_gives_no_unit():
     assert syms.dot_s is None and syms.wpm is None and syms.n_marks == 0
     t = report.timing(syms)
     assert all(v is None for v in t.__dict__.values())  # not measured: None, never 0
+
+
+@pytest.mark.parametrize(("first_wpm", "then_wpm"), [(12.0, 25.0), (30.0, 14.0), (40.0, 20.0)])
+def test_an_abrupt_speed_change_keeps_both_speeds(first_wpm, then_wpm):
+    # two runs of exact ITU-R M.1677-1 timing, about twice (or half) the speed apart,
+    # after a word gap at the slower speed; each mark's unit must be the one it was keyed
+    # at, so every class is right
+    a = key(MESSAGE, wpm=first_wpm)
+    b = key(MESSAGE, wpm=then_wpm)
+    gap_s = 7 * dot_s_from_wpm(min(first_wpm, then_wpm))
+    shift = a.end_s[-1] + gap_s - b.start_s[0]
+    syms = classify(marks_of(np.concatenate([a.start_s, b.start_s + shift]),
+                             np.concatenate([a.end_s, b.end_s + shift])))
+    units = np.concatenate([a.units, b.units])
+    np.testing.assert_array_equal(syms.is_dash, units == 3)
+    assert decode(syms).text == f"{a.text} {b.text}"
+    true_dot = np.concatenate([np.full(a.n_marks, dot_s_from_wpm(first_wpm)),
+                               np.full(b.n_marks, dot_s_from_wpm(then_wpm))])
+    np.testing.assert_allclose(syms.local_dot_s, true_dot, rtol=1e-9)
