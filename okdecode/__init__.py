@@ -7,6 +7,13 @@ from __future__ import annotations
 
 __version__ = "0.1.0"
 
+#: Decision methods: "sequence", the soft-decision sequence decoder (okdecode.sequence),
+#: which starts from the threshold's decision; "threshold", the adaptive threshold,
+#: element by element (the baseline, and the only one for pulsed carriers).
+DECODERS = ("sequence", "threshold")
+#: The decoder used where none is named.
+DEFAULT_DECODER = "sequence"
+
 _PUBLIC = {
     "decode_file": "okdecode.receiver",
     "decode_array": "okdecode.receiver",
@@ -24,7 +31,7 @@ _PUBLIC = {
     "ParameterError": "okdecode.errors",
 }
 
-__all__ = sorted(_PUBLIC) + ["__version__"]
+__all__ = sorted(_PUBLIC) + ["DECODERS", "DEFAULT_DECODER", "__version__"]
 
 
 def __getattr__(name: str):

@@ -14,17 +14,14 @@ from os import PathLike
 
 import numpy as np
 
+from . import DECODERS, DEFAULT_DECODER, report
 from . import baseband as bb
 from . import marks as mk
-from . import report
 from . import symbols as sy
 from . import text as tx
 from .capture import Capture, from_array, open_capture
 from .errors import ParameterError
 
-#: "threshold": the adaptive threshold, element by element (the baseline);
-#: "sequence": the soft-decision sequence decoder (okdecode.sequence) on top of it.
-DECODERS = ("threshold", "sequence")
 #: Filter lengths tried before the speed is known, s (they suit about 5 to 60 WPM).
 FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096, 0.192)
 #: Length of the stretch of a long recording on which the filter length is chosen, s.
@@ -47,11 +44,11 @@ class Options:
     carrier_hz: float | None = None
     channel: int | None = None
     wpm: float | None = None
-    decoder: str = "threshold"
+    decoder: str = DEFAULT_DECODER
 
     @classmethod
     def checked(cls, source: str, *, carrier_hz=None, channel=None, wpm=None,
-                decoder="threshold") -> Options:
+                decoder=DEFAULT_DECODER) -> Options:
         if carrier_hz is not None:
             # its band is checked against the capture's when tuning
             carrier_hz = _number(source, "carrier", carrier_hz, "Hz")
@@ -82,14 +79,14 @@ def _number(source: str, what: str, value, unit: str) -> float:
 
 def decode_capture(capture: Capture, *, carrier_hz: float | None = None,
                    channel: int | None = None, wpm: float | None = None,
-                   decoder: str = "threshold", progress=None) -> report.Reception:
+                   decoder: str = DEFAULT_DECODER, progress=None) -> report.Reception:
     """Decode an opened capture. See :func:`decode_file` for the options."""
     return _decode(capture, carrier_hz=carrier_hz, channel=channel, wpm=wpm,
                    decoder=decoder, progress=progress, all_carriers=False)[0]
 
 
 def decode_all_carriers(capture: Capture, *, channel: int | None = None,
-                        wpm: float | None = None, decoder: str = "threshold",
+                        wpm: float | None = None, decoder: str = DEFAULT_DECODER,
                         progress=None) -> list[report.Reception]:
     """Decode every keyed carrier the search finds, each on its own, in order of time.
 
@@ -424,7 +421,7 @@ def decode_array(samples: np.ndarray, rate_hz: float, *, center_hz: float = 0.0,
 
 def decode_file(path: str | PathLike, *, carrier_hz: float | None = None,
                 channel: int | None = None, wpm: float | None = None,
-                decoder: str = "threshold", progress=None, **reader_options
+                decoder: str = DEFAULT_DECODER, progress=None, **reader_options
                 ) -> report.Reception:
     """Decode one recording.
 
@@ -439,8 +436,9 @@ def decode_file(path: str | PathLike, *, carrier_hz: float | None = None,
     wpm : float, optional
         Sending speed, WPM, when known.
     decoder : str
-        ``"threshold"`` (adaptive threshold, element by element) or ``"sequence"`` (the
-        soft-decision sequence decoder, which starts from the threshold's decision).
+        ``"sequence"`` (the default: the soft-decision sequence decoder, which starts from
+        the threshold's decision) or ``"threshold"`` (adaptive threshold, element by
+        element).
     progress : callable, optional
         Called with the number of samples handled after each block.
     **reader_options

@@ -1027,6 +1027,8 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     llr = mark_llr(y, n, np.interp(mid, t_s, track.amplitude), np.interp(mid, t_s, density),
                    fs)
     m_conf, g_conf = _confidences(segments, llr, durations, k)
+    start_s, end_s = _refine_edges(envelope, marks, start_s, end_s,
+                                   reach_s=1.5 * dot_s / k)
     level, snr_db = _levels(envelope, marks, start_s, end_s)
     new_marks = Marks(start_s=start_s, end_s=end_s, level=level, peak_snr_db=snr_db,
                       levels=marks.levels, source=source)
@@ -1044,6 +1046,50 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
                           dot_s=unit, dash_dot_ratio=ratio, farnsworth=farns,
                           farnsworth_wpm=f_wpm, source=source)
     return new_marks, new_symbols
+
+
+def _refine_edges(envelope: Envelope, marks: Marks, start_s: np.ndarray, end_s: np.ndarray,
+                  *, reach_s: float) -> tuple[np.ndarray, np.ndarray]:
+    """Edges moved from the lattice's steps to where the envelope crosses the threshold.
+
+    The decision's edges lie on steps of a sixth of a dot. After the moving average
+    matched to the dot, a mark's edge is where the envelope crosses halfway between the
+    noise and the mark level, the threshold path's threshold (:mod:`okdecode.marks`);
+    each edge moves to the crossing of the right direction nearest to it within
+    ``reach_s``, found by linear interpolation between samples, and stays where no such
+    crossing is (a mark the threshold path missed). Timing statistics and the level
+    measurement then see the marks' true lengths, not lengths rounded to steps.
+    """
+    x, lv = envelope.magnitude, marks.levels
+    if x.size < 2 or start_s.size == 0 or lv.time_s.size == 0:
+        return start_s, end_s
+    t = envelope.time_s
+    over = x - np.interp(t, lv.time_s, lv.threshold)
+    reach = max(1, int(math.ceil(reach_s * envelope.rate_hz)))
+    offsets = np.arange(-reach, reach)
+
+    def moved(edge_s: np.ndarray, rising: bool) -> np.ndarray:
+        i0 = np.round((edge_s - envelope.start_s) * envelope.rate_hz).astype(np.int64)
+        i = np.clip(i0[:, None] + offsets[None, :], 0, x.size - 2)
+        a, b = over[i], over[i + 1]
+        cross = (a < 0) & (b >= 0) if rising else (a >= 0) & (b < 0)
+        frac = np.where(cross, a / np.where(a != b, a - b, 1.0), 0.0)
+        at = t[i] + frac / envelope.rate_hz
+        dist = np.where(cross, np.abs(at - edge_s[:, None]), np.inf)
+        j = np.argmin(dist, axis=1)
+        rows = np.arange(edge_s.size)
+        ok = np.isfinite(dist[rows, j]) & (dist[rows, j] <= reach_s)
+        return np.where(ok, at[rows, j], edge_s)
+
+    new_start, new_end = moved(start_s, True), moved(end_s, False)
+    # keep the order of the edges; a mark whose edges cross keeps the lattice's
+    bad = new_end <= new_start
+    bad[1:] |= new_start[1:] <= new_end[:-1]
+    bad[:-1] |= new_start[1:] <= new_end[:-1]
+    new_start, new_end = np.where(bad, start_s, new_start), np.where(bad, end_s, new_end)
+    if np.any(new_end <= new_start) or np.any(new_start[1:] <= new_end[:-1]):
+        return start_s, end_s
+    return new_start, new_end
 
 
 def _levels(envelope: Envelope, marks: Marks, start_s: np.ndarray, end_s: np.ndarray

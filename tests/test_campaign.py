@@ -236,3 +236,17 @@ def test_each_recording_links_to_its_figure(report_dir):
     for r in rows:
         assert r["figure"] and (report_dir / r["figure"]).stat().st_size > 0
         assert f'href="{html.escape(r["figure"])}"' in page
+
+
+def test_the_range_estimate_aims_at_the_limit_of_the_decoders_used():
+    # measured limits (bench/sensitivity.py): the sequence decoder's is the lower one
+    limits = campaign.DECODING_LIMIT_DBHZ
+    assert limits["sequence"] < limits["threshold"]
+    assert campaign.decoding_limit_dbhz([{"decoder": "sequence"}]) == limits["sequence"]
+    # a campaign with both takes the less sensitive one's limit
+    mixed = [{"decoder": "sequence"}, {"decoder": "threshold"}]
+    assert campaign.decoding_limit_dbhz(mixed) == limits["threshold"]
+    fit = campaign.fit_path_loss([10.0, 100.0, 1000.0], [60.0, 40.0, 20.0])
+    # C/N0 = 80 - 20 log10(d): the distance where it meets the limit
+    assert campaign.range_estimate_m(fit, limits["sequence"]) == pytest.approx(
+        10 ** ((80.0 - limits["sequence"]) / 20.0))
