@@ -975,6 +975,12 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
                             2.0 * envelope.noise_sigma**2 / envelope.noise_bandwidth_hz)
     else:
         density = noise_density(baseband)
+    # a recording without noise (a generated float array) would give ratios past float32's
+    # range: the noise is taken as at least 60 dB under the baseband's mean power
+    z = baseband.samples
+    floor = 1e-6 * float(np.mean(z.real.astype(np.float64) ** 2 + z.imag.astype(np.float64)
+                                 ** 2)) / fs
+    density = np.maximum(density, floor)
     dot_s = float(symbols.dot_s)
     thr_track = (symbols.start_s, _robust_unit_track(symbols.start_s, symbols.local_dot_s,
                                                      dot_s))

@@ -216,3 +216,19 @@ def test_edges_are_not_rounded_to_the_lattice(seed):
                           got.symbols.end_s - truth.end_s])
     # the moving average's delay is removed; what is left is the scatter about a bias
     assert np.std(err) < 1.5e-3
+
+
+@pytest.mark.filterwarnings("error")
+def test_a_recording_without_noise_decodes_without_overflow():
+    # a generated float array may hold no noise at all: the mark ratios must stay finite
+    # in the lattice's float32 (no RuntimeWarning, which this test turns into an error).
+    # Built here with numpy alone: a 700 Hz tone keyed on the exact timing, 5 WPM (the
+    # long marks make the largest ratios), half a second before, 2.2 s after
+    k = key("VVV TEST", wpm=5.0)
+    rate = 8000.0
+    t = np.arange(int((k.end_s[-1] + 2.7) * rate)) / rate
+    on = np.zeros(t.size)
+    for a, b in zip(k.start_s + 0.5, k.end_s + 0.5, strict=True):
+        on[int(a * rate) : int(b * rate)] = 1.0
+    got = decode_array(0.5 * on * np.sin(2 * np.pi * 700.0 * t), rate, decoder="sequence")
+    assert got.text == k.text
