@@ -55,6 +55,10 @@ MIN_KEYED_SPREAD = 0.5
 #: power stays correlated over many frames.
 SEARCH_LAG_SUMS = (4, 8)
 SEARCH_LAGS = max(SEARCH_LAG_SUMS)
+#: A keyed bin this far under the strongest keyed bin of its channel is taken after
+#: every other, dB: the leakage of a carrier's keying (window sidelobes, harmonics) lies
+#: further down than this, a second station worth decoding first rarely does.
+DOMINATED_DB = 30.0
 #: Floor of a bin's power relative to its frame's median bin, before the log.
 LOG_POWER_FLOOR = 0.05
 #: The carrier search judges keying over segments of this length, s, so that a short
@@ -240,7 +244,17 @@ class KeyingSearch:
         keyed_power = self._best_cov  # of log power: grows with the keyed carrier's SNR
         found: list[Carrier] = []
         taken = np.zeros_like(z, dtype=bool)
-        order = np.argsort(-keyed_power, axis=None)
+        # the strongest keying first: the log power's autocovariance, which grows with
+        # the SNR in the bin and, unlike the mean power, is small for a steady carrier
+        # that fades. Where a receiver's narrow filter has taken the noise away, a strong
+        # carrier's far leakage (the window's sidelobes, a harmonic) is keyed at a higher
+        # SNR than the carrier itself; so bins more than DOMINATED_DB under the strongest
+        # keyed bin of their channel come after all the others
+        keyed = valid[None, :] & (z >= threshold) & (keyed_power > 0) & (
+            self._best_spread >= MIN_KEYED_SPREAD)
+        strongest = np.max(np.where(keyed, mean, 0.0), axis=1, keepdims=True)
+        dominated = mean < strongest * 10 ** (-DOMINATED_DB / 10)
+        order = np.lexsort((-keyed_power.ravel(), dominated.ravel()))
         for flat in order:
             ch, b = np.unravel_index(flat, z.shape)
             if not valid[b] or z[ch, b] < threshold or keyed_power[ch, b] <= 0:

@@ -76,6 +76,11 @@ from .marks import Marks
 from .symbols import CHARACTER, ELEMENT, WORD, Symbols, farnsworth_wpm
 from .text import PATTERNS, decode
 
+#: The noise band reading under this fraction of the noise sigma in the sequence
+#: decision's spaces (over the whole recording) means a receiver's filter has cut it; it
+#: is then calibrated to the spaces. Chance and missed marks move the ratio by a few
+#: tens of per cent, not by almost half.
+FILTERED_BAND_RATIO = 0.6
 #: Steps of the time lattice per dot.
 STEPS_PER_UNIT = 6
 #: Durations are searched over the mean ± this many standard deviations.
@@ -1008,22 +1013,16 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
         tries.append(((thr_track[0], thr_track[1] * scale), thr_decision))
     else:
         tries.append((thr_track, thr_decision))
-    best, start = None, None
-    for unit_track, decision in tries:
-        result = _pass(baseband, t_s, density, unit_track, decision, k)
-        if result is not None and (best is None or result.score > best.score):
-            best, start = result, decision
+    best = _decide(baseband, t_s, density, tries, k, dot_s, line_s, line_p)
     if best is None:
         return marks, symbols
-    if start is None or not _same(start, best.decision, step_s=dot_s / k):
-        # measured on a decision that has changed: measure again on the new one
-        unit_track = best.unit_track
-        if line_s is not None and line_p <= LINE_MAX_P and abs(
-                math.log(line_s / float(np.median(unit_track[1])))) < math.log(1.08):
-            unit_track = (unit_track[0], unit_track[1] * line_s / np.median(unit_track[1]))
-        again = _pass(baseband, t_s, density, unit_track, best.decision, k)
-        if again is not None:
-            best = again
+    ratio = _band_to_spaces(envelope, best.decision)
+    if ratio is not None and ratio < FILTERED_BAND_RATIO:
+        # the noise band reads well under the noise in this decision's spaces, over the
+        # whole recording: a receiver's narrow filter has cut it. Calibrated to the
+        # spaces, the ratios of the marks are decided again
+        density = density / ratio**2
+        best = _decide(baseband, t_s, density, tries, k, dot_s, line_s, line_p) or best
     segments, durations, track = best.segments, best.durations, best.track
     start_s, end_s = best.decision.start_s, best.decision.end_s
     is_dash, gap_class = best.decision.is_dash, best.decision.gap_class
@@ -1052,6 +1051,54 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
                           dot_s=unit, dash_dot_ratio=ratio, farnsworth=farns,
                           farnsworth_wpm=f_wpm, source=source)
     return new_marks, new_symbols
+
+
+def _decide(baseband: Baseband, t_s: np.ndarray, density: np.ndarray, tries: list,
+            k: int, dot_s: float, line_s: float | None, line_p: float) -> _Pass | None:
+    """The likeliest of the passes started from ``tries``, measured again if it moved."""
+    best, start = None, None
+    for unit_track, decision in tries:
+        result = _pass(baseband, t_s, density, unit_track, decision, k)
+        if result is not None and (best is None or result.score > best.score):
+            best, start = result, decision
+    if best is None:
+        return None
+    if start is None or not _same(start, best.decision, step_s=dot_s / k):
+        # measured on a decision that has changed: measure again on the new one
+        unit_track = best.unit_track
+        if line_s is not None and line_p <= LINE_MAX_P and abs(
+                math.log(line_s / float(np.median(unit_track[1])))) < math.log(1.08):
+            unit_track = (unit_track[0], unit_track[1] * line_s / np.median(unit_track[1]))
+        again = _pass(baseband, t_s, density, unit_track, best.decision, k)
+        if again is not None:
+            best = again
+    return best
+
+
+def _band_to_spaces(envelope: Envelope, decision: _Decision) -> float | None:
+    """The noise band's sigma over the one measured in a decision's spaces, or None.
+
+    Both over the interiors of the gaps (half a filter length in from each mark): the
+    band's reading there against ``sqrt(mean(x**2) / 2)``, the maximum-likelihood
+    Rayleigh sigma of the envelope. None without the band or with under 64 samples.
+    """
+    if envelope.noise_sigma is None or decision.start_s.size == 0:
+        return None
+    t, x = envelope.time_s, envelope.magnitude
+    guard_s = 0.5 * envelope.filter_s + 2.0 / envelope.rate_hz
+    lo = np.concatenate([[-np.inf], decision.end_s]) + guard_s
+    hi = np.concatenate([decision.start_s, [np.inf]]) - guard_s
+    i0, i1 = np.searchsorted(t, lo), np.searchsorted(t, hi)
+    ok = i1 > i0
+    delta = np.zeros(t.size + 1, dtype=np.int64)
+    np.add.at(delta, i0[ok], 1)
+    np.add.at(delta, i1[ok], -1)
+    inside = np.cumsum(delta[:-1]) > 0
+    if inside.sum() < 64:
+        return None
+    spaces = math.sqrt(float(np.mean(x[inside] ** 2)) / 2.0)
+    band = math.sqrt(float(np.mean(envelope.noise_sigma[inside] ** 2)))
+    return band / spaces if spaces > 0 else None
 
 
 def _refine_edges(envelope: Envelope, marks: Marks, start_s: np.ndarray, end_s: np.ndarray,

@@ -116,3 +116,35 @@ def test_an_abrupt_speed_change_between_words(first_wpm, then_wpm, seed, decoder
     dots = got.symbols.local_dot_s
     assert np.median(dots[:5]) == pytest.approx(1.2 / first_wpm, rel=0.1)
     assert np.median(dots[-5:]) == pytest.approx(1.2 / then_wpm, rel=0.1)
+
+
+def _narrow_filter(samples: np.ndarray) -> np.ndarray:
+    # a receiver's 250 Hz CW filter around a 700 Hz tone: an 8th-order Butterworth
+    # band-pass from scipy.signal
+    from scipy import signal
+
+    sos = signal.butter(4, [575.0, 825.0], btype="bandpass", fs=8000.0, output="sos")
+    return signal.sosfilt(sos, samples)
+
+
+@pytest.mark.parametrize("decoder", ["threshold", "sequence"])
+@pytest.mark.parametrize("seed", [46, 48, 50])
+def test_a_receivers_narrow_filter_leaves_the_carrier_found(seed, decoder):
+    # outside the filter there is almost no noise, so the keyed carrier's far leakage
+    # there (the search window's sidelobes) is keyed at a higher SNR than the carrier
+    rec = synth(MESSAGE, wpm=20.0, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=34.0,
+                seed=seed)
+    got = decode_array(_narrow_filter(rec.samples), 8000.0, decoder=decoder)
+    assert abs(got.carrier_hz - 700.0) < 10.0
+    assert got.text == rec.truth.text
+
+
+@pytest.mark.parametrize("seed", [40, 42, 43])
+def test_a_receivers_narrow_filter_near_the_decoding_limit(seed):
+    # the noise band beside the carrier (100 to 225 Hz off) is mostly outside the filter,
+    # so it under-reads the noise the envelope sees; 26 dB-Hz decodes cleanly at 20 WPM
+    # without the filter (bench/sensitivity.py), and must with it
+    rec = synth(MESSAGE, wpm=20.0, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=26.0,
+                seed=seed)
+    got = decode_array(_narrow_filter(rec.samples), 8000.0, decoder="sequence")
+    assert got.text == rec.truth.text
