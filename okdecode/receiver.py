@@ -322,6 +322,9 @@ def _decode_baseband(base: bb.Baseband, capture: Capture, opts: Options, warning
     if level.snr_db is not None and level.snr_db < 6.0:
         warnings.append(f"weak signal: SNR {level.snr_db:.1f} dB in "
                         f"{level.snr_bandwidth_hz:.0f} Hz; expect errors")
+    for a, b in zip(syms.held_start_s, syms.held_end_s, strict=True):
+        notes.append(f"key held down for {b - a:.1f} s from {a:.2f} s (no element; "
+                     "not in the text)")
     if syms.farnsworth and syms.farnsworth_wpm is not None:
         notes.append(f"Farnsworth spacing: characters at {syms.wpm:.1f} WPM, "
                      f"overall {syms.farnsworth_wpm:.1f} WPM")

@@ -73,7 +73,7 @@ import numpy as np
 
 from .baseband import Baseband, Envelope, moving_average, noise_density
 from .marks import Marks
-from .symbols import CHARACTER, ELEMENT, WORD, Symbols, farnsworth_wpm
+from .symbols import CHARACTER, ELEMENT, HELD_MARK_UNITS, WORD, Symbols, farnsworth_wpm
 from .text import PATTERNS, decode
 
 #: The noise band reading under this fraction of the noise sigma in the sequence
@@ -987,12 +987,22 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
                                  ** 2)) / fs
     density = np.maximum(density, floor)
     dot_s = float(symbols.dot_s)
+    held = (symbols.held_start_s, symbols.held_end_s)
     thr_track = (symbols.start_s, _robust_unit_track(symbols.start_s, symbols.local_dot_s,
                                                      dot_s))
     thr_decision = _Decision(symbols.start_s, symbols.end_s, symbols.is_dash,
                              symbols.gap_class)
     lines = _lines(baseband, min_wpm=5.0, max_wpm=50.0, n_lines=2)
     line_s, line_p = lines[0] if lines else (None, 1.0)
+    if held[0].size:
+        # a key held down is no element: blanked, the lattice reads it as a pause. Held
+        # against the keying line's unit too, where that is sharp: a threshold path that
+        # took far too short a unit finds "held" marks that are only dashes
+        unit = max(dot_s, line_s) if line_s is not None and line_p <= LINE_MAX_P else dot_s
+        long = (held[1] - held[0]) > HELD_MARK_UNITS * unit
+        held = (held[0][long], held[1][long])
+        baseband = _blank(baseband, t_s, held[0] - 0.5 * envelope.filter_s,
+                          held[1] + 0.5 * envelope.filter_s)
     tries: list[tuple[tuple[np.ndarray, np.ndarray], _Decision | None]] = []
     ratio = line_s / dot_s if line_s else 1.0
     # a threshold path that has lost the signal reads noise as code far too fast or slow
@@ -1016,7 +1026,7 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     best = _decide(baseband, t_s, density, tries, k, dot_s, line_s, line_p)
     if best is None:
         return marks, symbols
-    ratio = _band_to_spaces(envelope, best.decision)
+    ratio = _band_to_spaces(envelope, best.decision, held)
     if ratio is not None and ratio < FILTERED_BAND_RATIO:
         # the noise band reads well under the noise in this decision's spaces, over the
         # whole recording: a receiver's narrow filter has cut it. Calibrated to the
@@ -1034,8 +1044,12 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     m_conf, g_conf = _confidences(segments, llr, durations, k)
     start_s, end_s = _refine_edges(envelope, marks, start_s, end_s,
                                    reach_s=1.5 * dot_s / k)
-    level, snr_db = _levels(envelope, marks, start_s, end_s)
-    new_marks = Marks(start_s=start_s, end_s=end_s, level=level, peak_snr_db=snr_db,
+    # the key-down intervals, the held ones among them
+    all_start = np.concatenate([start_s, held[0]])
+    order = np.argsort(all_start, kind="stable")
+    all_start, all_end = all_start[order], np.concatenate([end_s, held[1]])[order]
+    level, snr_db = _levels(envelope, marks, all_start, all_end)
+    new_marks = Marks(start_s=all_start, end_s=all_end, level=level, peak_snr_db=snr_db,
                       levels=marks.levels, source=source)
     local = np.interp(start_s, unit_time_s, unit_s)
     unit = float(np.median(local))
@@ -1049,8 +1063,20 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     new_symbols = Symbols(start_s=start_s, end_s=end_s, is_dash=is_dash, gap_class=gap_class,
                           mark_confidence=m_conf, gap_confidence=g_conf, local_dot_s=local,
                           dot_s=unit, dash_dot_ratio=ratio, farnsworth=farns,
-                          farnsworth_wpm=f_wpm, source=source)
+                          farnsworth_wpm=f_wpm, source=source, held_start_s=held[0],
+                          held_end_s=held[1])
     return new_marks, new_symbols
+
+
+def _blank(baseband: Baseband, t_s: np.ndarray, lo_s: np.ndarray, hi_s: np.ndarray
+           ) -> Baseband:
+    """The baseband with its samples inside the intervals [lo_s, hi_s] set to zero."""
+    from dataclasses import replace
+
+    z = baseband.samples.copy()
+    for a, b in zip(np.searchsorted(t_s, lo_s), np.searchsorted(t_s, hi_s), strict=True):
+        z[a:b] = 0
+    return replace(baseband, samples=z)
 
 
 def _decide(baseband: Baseband, t_s: np.ndarray, density: np.ndarray, tries: list,
@@ -1075,19 +1101,24 @@ def _decide(baseband: Baseband, t_s: np.ndarray, density: np.ndarray, tries: lis
     return best
 
 
-def _band_to_spaces(envelope: Envelope, decision: _Decision) -> float | None:
+def _band_to_spaces(envelope: Envelope, decision: _Decision,
+                    held: tuple[np.ndarray, np.ndarray]) -> float | None:
     """The noise band's sigma over the one measured in a decision's spaces, or None.
 
-    Both over the interiors of the gaps (half a filter length in from each mark): the
-    band's reading there against ``sqrt(mean(x**2) / 2)``, the maximum-likelihood
-    Rayleigh sigma of the envelope. None without the band or with under 64 samples.
+    Both over the interiors of the gaps (half a filter length in from each mark, and
+    away from the keys held down): the band's reading there against
+    ``sqrt(mean(x**2) / 2)``, the maximum-likelihood Rayleigh sigma of the envelope.
+    None without the band or with under 64 samples.
     """
     if envelope.noise_sigma is None or decision.start_s.size == 0:
         return None
     t, x = envelope.time_s, envelope.magnitude
     guard_s = 0.5 * envelope.filter_s + 2.0 / envelope.rate_hz
-    lo = np.concatenate([[-np.inf], decision.end_s]) + guard_s
-    hi = np.concatenate([decision.start_s, [np.inf]]) - guard_s
+    key_on = np.concatenate([decision.start_s, held[0]])
+    order = np.argsort(key_on)
+    key_on, key_off = key_on[order], np.concatenate([decision.end_s, held[1]])[order]
+    lo = np.concatenate([[-np.inf], key_off]) + guard_s
+    hi = np.concatenate([key_on, [np.inf]]) - guard_s
     i0, i1 = np.searchsorted(t, lo), np.searchsorted(t, hi)
     ok = i1 > i0
     delta = np.zeros(t.size + 1, dtype=np.int64)

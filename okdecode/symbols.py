@@ -23,7 +23,8 @@ own running median.
 found on log duration (2-means); spaces under 2 local units are element gaps, and the
 rest split into character and word gaps by 2-means on log duration, or, where only one
 cluster exists, by its length. Spaces longer than 20 units, and four times the median
-of the longer spaces, are pauses (word breaks).
+of the longer spaces, are pauses (word breaks). Marks longer than 20 units are a key
+held down, not elements: they are set aside (``held_start_s``, ``held_end_s``).
 Character gaps longer than 4.5 units mean Farnsworth spacing; the overall speed then
 follows from J. Bloom's relation (QEX, 1990): a PARIS word at character speed ``c`` and
 overall speed ``s`` stretches its 19 units of character and word spacing to
@@ -37,12 +38,18 @@ timing error on log duration).
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from .marks import Marks
 
+#: Marks count as at most this many units (a word gap; common practice: no element of
+#: the code comes near it) in the dot/dash clusters.
+LONG_MARK_UNITS = 7.0
+#: A mark longer than this many units (as long as a pause) is a key held down, not an
+#: element.
+HELD_MARK_UNITS = 20.0
 #: A space longer than this many units is a pause between transmissions.
 PAUSE_UNITS = 20.0
 ELEMENT, CHARACTER, WORD = 1, 3, 7
@@ -120,6 +127,10 @@ class Symbols:
     farnsworth: bool
     farnsworth_wpm: float | None  # overall speed when Farnsworth-spaced
     source: str
+    # marks longer than HELD_MARK_UNITS: a key held down (to tune, or stuck), not elements
+    # of the code, so not in the arrays above; start and end, s
+    held_start_s: np.ndarray = field(default_factory=lambda: np.empty(0))
+    held_end_s: np.ndarray = field(default_factory=lambda: np.empty(0))
 
     @property
     def wpm(self) -> float | None:
@@ -394,12 +405,29 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
     if wpm:
         # the user's speed stands unless the marks clearly disagree
         local = np.where(np.abs(np.log(local / u0)) < math.log(1.3), local, u0)
-    # marks: dots and dashes
+    # a mark far longer than any element is a key held down (to tune, or stuck): it is
+    # set aside, so that it does not enter the timing; the space across it is a word
+    # break
+    held = m > HELD_MARK_UNITS * local
+    held_start, held_end = start[held], end[held]
+    if held.any():
+        start, end, m, local = start[~held], end[~held], m[~held], local[~held]
+        n = start.size
+        g = start[1:] - end[:-1]
+        if n == 0:
+            e = np.empty(0)
+            return Symbols(start, end, np.zeros(0, bool), np.zeros(0, int), e, e, e, None,
+                           None, False, None, marks.source, held_start, held_end)
+    # marks: dots and dashes. For the clusters' centres, marks count as at most a word
+    # gap long: a longer one (a short key-down, noise bridging elements) is a dash, but
+    # would otherwise split off from all the other marks as a cluster of its own. The
+    # spread, and so the confidences, see the true lengths
     lm = np.log(m / local)
+    lc = np.minimum(lm, math.log(LONG_MARK_UNITS))
     if n >= 2:
-        c_lo, c_hi, _ = _two_means(lm)
+        c_lo, c_hi, _ = _two_means(lc)
     else:
-        c_lo = c_hi = float(lm[0])
+        c_lo = c_hi = float(lc[0])
     if c_hi - c_lo > math.log(1.8):
         boundary = 0.5 * (c_lo + c_hi)
         is_dash = lm > boundary
@@ -457,4 +485,5 @@ def classify(marks: Marks, *, wpm: float | None = None) -> Symbols:
     return Symbols(start_s=start, end_s=end, is_dash=is_dash, gap_class=gap_class,
                    mark_confidence=mark_conf, gap_confidence=gap_conf, local_dot_s=local,
                    dot_s=unit, dash_dot_ratio=dash_ratio, farnsworth=farns,
-                   farnsworth_wpm=f_wpm, source=marks.source)
+                   farnsworth_wpm=f_wpm, source=marks.source, held_start_s=held_start,
+                   held_end_s=held_end)

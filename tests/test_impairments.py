@@ -148,3 +148,16 @@ def test_a_receivers_narrow_filter_near_the_decoding_limit(seed):
                 seed=seed)
     got = decode_array(_narrow_filter(rec.samples), 8000.0, decoder="sequence")
     assert got.text == rec.truth.text
+
+
+@pytest.mark.parametrize("decoder", ["threshold", "sequence"])
+def test_a_tuning_carrier_before_the_message(decoder):
+    # the key held down for 3 s (50 units at 20 WPM), half a second, then the message
+    rec = synth(MESSAGE, wpm=20.0, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=34.0,
+                seed=47, lead_s=3.7)
+    t = np.arange(rec.samples.size) / rec.rate_hz
+    held = (t >= 0.2) & (t < 3.2)
+    x = rec.samples + np.where(held, rec.truth.amplitude * np.cos(2 * np.pi * 700.0 * t), 0.0)
+    got = decode_array(x, rec.rate_hz, decoder=decoder)
+    assert got.text == rec.truth.text
+    assert any(n.startswith("key held down for 3.0 s from 0.2") for n in got.notes)

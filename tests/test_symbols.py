@@ -177,3 +177,29 @@ def test_an_abrupt_speed_change_keeps_both_speeds(first_wpm, then_wpm):
     true_dot = np.concatenate([np.full(a.n_marks, dot_s_from_wpm(first_wpm)),
                                np.full(b.n_marks, dot_s_from_wpm(then_wpm))])
     np.testing.assert_allclose(syms.local_dot_s, true_dot, rtol=1e-9)
+
+
+def test_a_key_held_down_is_set_aside():
+    # a tuning carrier of 50 units, a pause, then the message: the long mark is no element
+    # (ITU-R M.1677-1 has none longer than 3 units), so the classes and the text are the
+    # message's alone and the held mark is reported apart
+    k = key(MESSAGE, wpm=20.0)
+    u = dot_s_from_wpm(20.0)
+    shift = 50 * u + 10 * u
+    syms = classify(marks_of(np.concatenate([[0.0], k.start_s + shift]),
+                             np.concatenate([[50 * u], k.end_s + shift])))
+    np.testing.assert_array_equal(syms.is_dash, k.units == 3)
+    assert decode(syms).text == k.text
+    np.testing.assert_allclose([syms.held_start_s[0], syms.held_end_s[0]], [0.0, 50 * u])
+    assert syms.dot_s == pytest.approx(u, rel=1e-6)
+
+
+def test_a_mark_longer_than_a_word_gap_does_not_split_the_classes():
+    # a 12-unit mark among the message's: a dash, and every other class as keyed
+    k = key(MESSAGE, wpm=20.0)
+    u = dot_s_from_wpm(20.0)
+    shift = 12 * u + 7 * u
+    syms = classify(marks_of(np.concatenate([[0.0], k.start_s + shift]),
+                             np.concatenate([[12 * u], k.end_s + shift])))
+    assert syms.is_dash[0] and syms.held_start_s.size == 0
+    np.testing.assert_array_equal(syms.is_dash[1:], k.units == 3)
