@@ -38,6 +38,13 @@ a mark against noise is [3]_
 
     LLR = ln I0(2 A |y| / (fs N0)) - L A^2 / (fs N0).
 
+A keyed oscillator does not always hold its phase over a long mark: it drifts, or
+chirps at each key-down, and a coherent sum over a dash then falls while two dots with a
+gap between keep theirs. So the same ratio is also taken with the phase held for one
+dot at a time only, as the sum of the blocks' ratios, and each mark counts the likelier
+of the two phase models (a generalised likelihood ratio; for a steady carrier the
+coherent one, which is the larger, stands).
+
 Gaps add nothing against the all-noise reference, so a whole hypothesis scores the
 sum of its marks' ratios plus the log-probabilities of its durations and characters.
 ``A`` is tracked through fades by a kernel-weighted, noise-corrected mean of
@@ -81,6 +88,9 @@ from .text import PATTERNS, decode
 #: is then calibrated to the spaces. Chance and missed marks move the ratio by a few
 #: tens of per cent, not by almost half.
 FILTERED_BAND_RATIO = 0.6
+#: A mark's evidence is also taken with the carrier's phase held for this many dots at
+#: a time only (drift, chirp), and the likelier of the two phase models counts.
+BLOCK_UNITS = 1.0
 #: Steps of the time lattice per dot.
 STEPS_PER_UNIT = 6
 #: Durations are searched over the mean ± this many standard deviations.
@@ -359,12 +369,35 @@ def _mark_llrs(lat: _Lattice, track: _Track, d: np.ndarray, t: np.ndarray) -> np
     ok = (a >= 0) & (t < n_t)
     a = np.clip(a, 0, n_t - 1)
     t = np.clip(t, 0, n_t - 1)
-    y = lat.cumsum[t] - lat.cumsum[a]
-    n = (lat.time_s[t] - lat.time_s[a]) * lat.fs
     mid = 0.5 * (lat.time_s[t] + lat.time_s[a])
     amp = np.interp(mid, track.time_s, track.amplitude)
     den = np.interp(mid, track.time_s, track.density)
-    return np.where(ok, mark_llr(y, n, amp, den, lat.fs), -np.inf)
+    y = lat.cumsum[t] - lat.cumsum[a]
+    n = (lat.time_s[t] - lat.time_s[a]) * lat.fs
+    held = mark_llr(y, n, amp, den, lat.fs)
+    # the phase held for BLOCK_UNITS at a time: the sum of the blocks' ratios, each from
+    # the baseband summed over its block (module notes)
+    b = max(1, int(round(BLOCK_UNITS * lat.k)))
+    blocks = np.zeros(held.shape)
+    for j in range(int(np.max(d)) // b + 1):
+        lo = np.minimum(a + j * b, t)
+        hi = np.minimum(lo + b, t)
+        if not np.any(hi > lo):
+            break
+        y = lat.cumsum[hi] - lat.cumsum[lo]
+        n = np.maximum((lat.time_s[hi] - lat.time_s[lo]) * lat.fs, 1e-9)
+        blocks += np.where(hi > lo, mark_llr(y, n, amp, den, lat.fs), 0.0)
+    return np.where(ok, np.maximum(held, blocks), -np.inf)
+
+
+def _segment_llrs(lat: _Lattice, track: _Track, marks: list[Segment]) -> np.ndarray:
+    """The ratio of each decided mark, as the lattice scored it (:func:`_mark_llrs`)."""
+    if not marks:
+        return np.empty(0)
+    ends = np.array([g.end for g in marks])
+    d = np.array([g.end - g.start for g in marks])
+    kinds, j = np.unique(d, return_inverse=True)
+    return _mark_llrs(lat, track, kinds, ends)[np.arange(ends.size), j]
 
 
 def _span(*ranges: np.ndarray) -> np.ndarray:
@@ -1037,10 +1070,7 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     start_s, end_s = best.decision.start_s, best.decision.end_s
     is_dash, gap_class = best.decision.is_dash, best.decision.gap_class
     unit_time_s, unit_s = best.unit_track
-    y, n = _sums(baseband, start_s, end_s)
-    mid = 0.5 * (start_s + end_s)
-    llr = mark_llr(y, n, np.interp(mid, t_s, track.amplitude), np.interp(mid, t_s, density),
-                   fs)
+    llr = _segment_llrs(best.lattice, track, [g for g in segments if g.is_mark])
     m_conf, g_conf = _confidences(segments, llr, durations, k)
     start_s, end_s = _refine_edges(envelope, marks, start_s, end_s,
                                    reach_s=1.5 * dot_s / k)
