@@ -147,14 +147,15 @@ def looks_like_text(head: bytes) -> bool:
 
 #: Extensions read through soundfile.
 AUDIO_EXTENSIONS = (".wav", ".wave", ".flac", ".ogg", ".oga", ".opus", ".aif", ".aiff", ".aifc",
-                    ".au", ".snd", ".w64", ".rf64", ".caf")
+                    ".au", ".snd", ".w64", ".rf64", ".caf", ".mp3")
 #: Extensions of text traces (oscilloscope and logger exports).
 TRACE_EXTENSIONS = (".csv", ".tsv", ".txt", ".asc", ".prn")
 #: SigMF recordings: a metadata and dataset pair, or an archive (compressed or not).
 SIGMF_SUFFIXES = (".sigmf-meta", ".sigmf-data", ".sigmf", ".sigmf.gz", ".sigmf.xz",
                   ".sigmf.bz2")
 #: Leading bytes of formats told by their content when the name says nothing.
-_AUDIO_MAGIC = (b"RIFF", b"RIFX", b"RF64", b"BW64", b"fLaC", b"OggS", b"FORM", b".snd")
+_AUDIO_MAGIC = (b"RIFF", b"RIFX", b"RF64", b"BW64", b"fLaC", b"OggS", b"FORM", b".snd",
+                b"ID3")
 _NPY_MAGIC = b"\x93NUMPY"
 
 
