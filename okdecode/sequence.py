@@ -375,18 +375,35 @@ def _mark_llrs(lat: _Lattice, track: _Track, d: np.ndarray, t: np.ndarray) -> np
     y = lat.cumsum[t] - lat.cumsum[a]
     n = (lat.time_s[t] - lat.time_s[a]) * lat.fs
     held = mark_llr(y, n, amp, den, lat.fs)
-    # the phase held for BLOCK_UNITS at a time: the sum of the blocks' ratios, each from
-    # the baseband summed over its block (module notes)
+    # the phase held for BLOCK_UNITS (b steps) at a time: the sum of the blocks' ratios,
+    # each from the baseband summed over its block (module notes). Counted back from the
+    # mark's end, the whole blocks of every duration ending at a step are the same ones,
+    # so their ratios are summed once along each chain of steps b apart, and only the
+    # part block at the mark's start depends on the duration
     b = max(1, int(round(BLOCK_UNITS * lat.k)))
-    blocks = np.zeros(held.shape)
-    for j in range(int(np.max(d)) // b + 1):
-        lo = np.minimum(a + j * b, t)
-        hi = np.minimum(lo + b, t)
-        if not np.any(hi > lo):
-            break
-        y = lat.cumsum[hi] - lat.cumsum[lo]
-        n = np.maximum((lat.time_s[hi] - lat.time_s[lo]) * lat.fs, 1e-9)
-        blocks += np.where(hi > lo, mark_llr(y, n, amp, den, lat.fs), 0.0)
+    m = d[None, :] // b  # whole blocks
+    lo_span = max(int(np.min(t)) - int(np.max(d)) - b, 0)
+    hi_span = int(np.max(t)) + 1
+    steps = np.arange(lo_span, hi_span)
+    first = np.clip(steps - b, 0, n_t - 1)
+    y0 = lat.cumsum[steps] - lat.cumsum[first]
+    n0 = np.maximum((lat.time_s[steps] - lat.time_s[first]) * lat.fs, 1e-9)
+    mid0 = 0.5 * (lat.time_s[steps] + lat.time_s[first])
+    block = np.where(steps >= b, mark_llr(y0, n0, np.interp(mid0, track.time_s,
+                                                            track.amplitude),
+                                          np.interp(mid0, track.time_s, track.density),
+                                          lat.fs), 0.0)
+    # chain[i] = block[i] + block[i - b] + ...: a running sum down the columns of rows b long
+    rows = -(-block.size // b)
+    chain = np.cumsum(np.pad(block, (0, rows * b - block.size)).reshape(rows, b),
+                      axis=0).ravel()[: block.size]
+    cut = t - m * b  # where the whole blocks begin
+    whole = chain[t - lo_span] - np.where(cut - lo_span >= 0,
+                                          chain[np.clip(cut - lo_span, 0, None)], 0.0)
+    y = lat.cumsum[cut] - lat.cumsum[a]
+    n = (lat.time_s[cut] - lat.time_s[a]) * lat.fs
+    part = np.where(cut > a, mark_llr(y, np.maximum(n, 1e-9), amp, den, lat.fs), 0.0)
+    blocks = whole + part
     return np.where(ok, np.maximum(held, blocks), -np.inf)
 
 
