@@ -313,9 +313,9 @@ def _peak_offset(power: np.ndarray, b: int) -> float:
     """Parabolic interpolation of a spectral peak on log power, in bins (|x| <= 0.5)."""
     if b <= 0 or b >= power.size - 1:
         return 0.0
-    a, c, d = np.log(np.maximum(power[b - 1 : b + 2], 1e-300))
+    a, c, d = np.log(np.maximum(power[b - 1 : b + 2].astype(np.float64), 1e-300))
     den = a - 2 * c + d
-    if den >= 0:
+    if not den < 0:  # a flat top, or a silent recording
         return 0.0
     return float(np.clip(0.5 * (a - d) / den, -0.5, 0.5))
 

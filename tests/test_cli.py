@@ -163,3 +163,19 @@ def test_bad_file_among_good_ones_costs_only_itself(tmp_path, good):
     assert [json.loads(line)["text"] for line in lines] == [t1.text, t2.text]
     assert [json.loads(line)["file"] for line in lines] == [p1, p2]
     one_error_line(result, bad.name)
+
+
+def test_a_silent_recording_prints_no_numeric_warnings(tmp_path):
+    # all-zero samples: every power is 0, and no log or division may complain about it
+    import subprocess
+    import sys
+
+    import soundfile
+
+    path = tmp_path / "silence.wav"
+    soundfile.write(path, np.zeros(40000), 8000, subtype="PCM_16")
+    out = subprocess.run([sys.executable, "-W", "error", "-m", "okdecode", "decode",
+                          str(path)], capture_output=True, text=True, check=False)
+    assert out.returncode == 0, out.stderr
+    assert "Warning" not in out.stderr
+    assert "no keyed signal found" in out.stdout
