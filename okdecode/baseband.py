@@ -208,7 +208,8 @@ class KeyingSearch:
         self._seg = [np.zeros_like(a) for a in self._seg]
         self._seg_n = 0
 
-    def result(self, *, min_hz: float = 0.0, max_candidates: int = 8) -> Spectrum:
+    def result(self, *, min_hz: float = 0.0, max_candidates: int = 8,
+               own_span: bool = True) -> Spectrum:
         """The spectrum and the keyed carriers, strongest first.
 
         Parameters
@@ -217,6 +218,9 @@ class KeyingSearch:
             Real captures: bins below this frequency are not candidates (DC, hum), Hz.
         max_candidates : int
             At most this many carriers are returned.
+        own_span : bool
+            A carrier owns the whole span its keying spreads over (a spark train's
+            comb is one carrier), not only its window's main lobe.
         """
         if self._seg_n >= 8 or self.n_segments == 0:
             self._close_segment()
@@ -273,7 +277,10 @@ class KeyingSearch:
             # a carrier owns its neighbours (the Hann main lobe and near leakage) and the
             # span its keying spreads over; the same carrier in another channel is not
             # another carrier
-            taken[:, max(0, min(lo, b - 3)) : min(self.n_bins, max(hi, b + 4))] = True
+            if own_span:
+                taken[:, max(0, min(lo, b - 3)) : min(self.n_bins, max(hi, b + 4))] = True
+            else:
+                taken[:, max(0, b - 3) : min(self.n_bins, b + 4)] = True
             found.append(Carrier(frequency_hz=float(freq[b] + _peak_offset(mean[ch], b) * bin_hz),
                                  channel=int(ch), score=float(z[ch, b]),
                                  keyed_power=float(keyed_power[ch, b]),
@@ -320,8 +327,8 @@ def _peak_offset(power: np.ndarray, b: int) -> float:
     return float(np.clip(0.5 * (a - d) / den, -0.5, 0.5))
 
 
-def search_carriers(capture: Capture, *, min_hz: float = 100.0,
-                    progress=None) -> Spectrum:
+def search_carriers(capture: Capture, *, min_hz: float = 100.0, progress=None,
+                    frame_s: float = SEARCH_FRAME_S, own_span: bool = True) -> Spectrum:
     """Find the keyed carriers in a capture (one pass over its samples).
 
     Parameters
@@ -332,6 +339,11 @@ def search_carriers(capture: Capture, *, min_hz: float = 100.0,
         Real captures: lowest frequency considered, Hz (keeps DC and mains hum out).
     progress : callable, optional
         Called with the number of samples handled after each block.
+    frame_s : float
+        Frame length, s: ``SEARCH_FRAME_S`` by default; three times that resolves
+        carriers a third as far apart, for keying up to about 30 WPM.
+    own_span : bool
+        See :meth:`KeyingSearch.result`.
 
     Returns
     -------
@@ -350,12 +362,13 @@ def search_carriers(capture: Capture, *, min_hz: float = 100.0,
     speed up to 50 WPM.
     """
     search = KeyingSearch(rate_hz=capture.rate_hz, n_channels=capture.n_channels,
-                          is_complex=capture.is_complex, center_hz=capture.center_hz)
+                          is_complex=capture.is_complex, center_hz=capture.center_hz,
+                          frame_s=frame_s)
     for block in capture.blocks():
         search.process(block)
         if progress is not None:
             progress(block.shape[0])
-    return search.result(min_hz=min_hz)
+    return search.result(min_hz=min_hz, own_span=own_span)
 
 
 # ---------------------------------------------------------------------------------------

@@ -139,6 +139,9 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
             return [report.empty(file=capture.source, duration_s=capture.duration_s,
                                  rate_hz=capture.rate_hz, channel=chan, decoder=opts.decoder,
                                  warnings=warnings, notes=notes, spectrum=spectrum)]
+        if all_carriers and found:
+            found = found + _close_neighbours(capture, spectrum, found, chan,
+                                              progress=progress)
         for c in _distinct(found):
             targets.append(_target(c, capture, spectrum, opts, chan,
                                    others=[o for o in found if o is not c]))
@@ -208,6 +211,38 @@ def _weak_target(capture: Capture, spectrum: bb.Spectrum, chan: int | None, *,
     note = (f"carrier found by its keying line at {best[1].carrier_hz:.0f} Hz, under the "
             f"search's threshold (false-alarm probability {best[0] * len(picks):.1g})")
     return _Target(best[1], None, (note,), baseband=best[2])
+
+
+#: For --all-carriers, a second search with frames this many times longer resolves
+#: keyed carriers closer together than the first search's bins allow.
+FINE_FRAMES = 3
+
+
+def _close_neighbours(capture: Capture, spectrum: bb.Spectrum, found: list[bb.Carrier],
+                      chan: int | None, *, progress=None) -> list[bb.Carrier]:
+    """Keyed carriers next to the ones found, which the first search's bins merged.
+
+    The first search owns a carrier's neighbouring bins (its window's main lobe, 4 bins of
+    77 Hz each side), so a second station 100 to 300 Hz away is taken for part of it. A
+    search with frames FINE_FRAMES times longer (bins of about 26 Hz) tells them apart;
+    a carrier it finds is new when it lies inside a first carrier's owned bins and more
+    than two of its own bins (and a first bin) from every carrier found.
+    """
+    # each fine carrier owns only its main lobe: next to a keyed carrier, another one is
+    # keyed too, and a span of keyed bins would join them
+    fine = bb.search_carriers(capture, progress=progress,
+                              frame_s=FINE_FRAMES * bb.SEARCH_FRAME_S, own_span=False)
+    owned_hz = 4.0 * spectrum.bin_hz
+    apart_hz = max(2.0 * fine.bin_hz, spectrum.bin_hz)
+    new: list[bb.Carrier] = []
+    for c in fine.carriers:
+        if chan is not None and c.channel != chan:
+            continue
+        near = [abs(c.frequency_hz - k.frequency_hz) for k in found + new
+                if k.channel == c.channel]
+        if near and min(near) > apart_hz and min(near) <= owned_hz:
+            new.append(c)
+    return new
 
 
 def _distinct(found: list[bb.Carrier]) -> list[bb.Carrier]:

@@ -165,3 +165,19 @@ def test_a_tuning_carrier_before_the_message(decoder):
     got = decode_array(x, rec.rate_hz, decoder=decoder)
     assert got.text == rec.truth.text
     assert any(n.startswith("key held down for 3.0 s from 0.2") for n in got.notes)
+
+
+@pytest.mark.parametrize("level_db", [0.0, 3.0])
+def test_a_keyed_station_120_hz_away_overlapping(level_db):
+    # another station keying a different message at the same time, 120 Hz up, as strong
+    # or 3 dB stronger: a plain decode reads the stronger one, and every carrier on its
+    # own reads both (the first search's 77 Hz bins hold the two within one main lobe)
+    rec = synth(MESSAGE, wpm=20.0, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=34.0, seed=31,
+                stations=(Station(carrier_hz=820.0, level_db=level_db, wpm=25.0,
+                                  message="VVV DE QX9TT QX9TT", start_s=1.0),))
+    other = rec.truth.others[0].text
+    got = decode_array(rec.samples, rec.rate_hz)
+    assert got.text == (other if level_db > 0 else rec.truth.text)
+    both = decode_all_carriers(from_array(rec.samples, 8000.0))
+    assert sorted((round(r.carrier_hz, -1), r.text) for r in both) == [
+        (700.0, rec.truth.text), (820.0, other)]
