@@ -131,6 +131,17 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
                     if abs(c.frequency_hz - opts.carrier_hz) < 3 * spectrum.bin_hz]
             found = near or found
         if not found and opts.carrier_hz is None:
+            # slow keying holds its marks over many frames, and frames three times longer
+            # see three times the carrier's energy against the same noise per bin: the
+            # carrier of 5 WPM code at 19 dB-Hz stands clear there and not in the first
+            fine = bb.search_carriers(capture, progress=progress,
+                                      frame_s=FINE_FRAMES * bb.SEARCH_FRAME_S)
+            found = [c for c in fine.carriers if chan is None or c.channel == chan]
+            if found:
+                spectrum = fine
+                notes.append("carrier found by the search with longer frames "
+                             f"({fine.bin_hz:.0f} Hz bins)")
+        if not found and opts.carrier_hz is None:
             weak = _weak_target(capture, spectrum, chan, progress=progress)
             if weak is not None:
                 targets.append(weak)

@@ -181,3 +181,18 @@ def test_a_keyed_station_120_hz_away_overlapping(level_db):
     both = decode_all_carriers(from_array(rec.samples, 8000.0))
     assert sorted((round(r.carrier_hz, -1), r.text) for r in both) == [
         (700.0, rec.truth.text), (820.0, other)]
+
+
+@pytest.mark.parametrize("seed", [60, 62, 63])
+def test_slow_code_near_its_limit_is_found(seed):
+    # 5 WPM at 20 dB-Hz: a dot of 240 ms holds E/N0 = 20 + 10 log10(0.24) = 13.8 dB, so
+    # the text is readable (the genie's 5 % CER lies near 18.4 dB-Hz here, scaled from
+    # 24.4 at 20 WPM (bench/sensitivity.py) by 10 log10(5 / 20)), but a 13 ms frame of
+    # the carrier search holds a twentieth of a dot, and its bin (77 Hz, times 1.5 for the
+    # Hann window's noise bandwidth, common practice) sees the carrier 0.6 dB under the
+    # noise: the search with frames three times longer must find it
+    rec = synth("QZ4RB DE QY2LM", wpm=5.0, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=20.0,
+                seed=seed)
+    got = decode_array(rec.samples, rec.rate_hz)
+    assert got.text == rec.truth.text
+    assert abs(got.carrier_hz - 700.0) < 5.0
