@@ -22,6 +22,8 @@ from . import text as tx
 from .capture import Capture, from_array, open_capture
 from .errors import ParameterError
 
+#: Speeds that people and keyers send at, WPM; decodes outside count for less.
+PLAUSIBLE_WPM = (4.0, 60.0)
 #: Filter lengths tried before the speed is known, s (they suit about 5 to 60 WPM).
 FIRST_FILTERS_S = (0.012, 0.024, 0.048, 0.096, 0.192)
 #: Length of the stretch of a long recording on which the filter length is chosen, s.
@@ -446,7 +448,11 @@ def _fit_score(syms: sy.Symbols, decoded: tx.Decoded, filter_s: float) -> float:
     # the mean, not the sum: noise let through a short filter makes many characters
     # whose elements fit no class well; a decode whose dot is far from the filter's
     # length is not self-consistent
-    return float(conf.mean()) * math.exp(-0.5 * max(mismatch - math.log(2.5), 0.0))
+    score = float(conf.mean()) * math.exp(-0.5 * max(mismatch - math.log(2.5), 0.0))
+    # and hand keys and keyers send from about 4 to 60 WPM: noise read through the
+    # shortest filter at 150 WPM may fit its classes, but is no sending
+    lo, hi = PLAUSIBLE_WPM
+    return score if lo <= 1.2 / syms.dot_s <= hi else 0.5 * score
 
 
 def decode_array(samples: np.ndarray, rate_hz: float, *, center_hz: float = 0.0,

@@ -1042,7 +1042,7 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
                                                      dot_s))
     thr_decision = _Decision(symbols.start_s, symbols.end_s, symbols.is_dash,
                              symbols.gap_class)
-    lines = _lines(baseband, min_wpm=5.0, max_wpm=50.0, n_lines=2)
+    lines = _lines(baseband, min_wpm=PLAUSIBLE_WPM[0], max_wpm=50.0, n_lines=2)
     line_s, line_p = lines[0] if lines else (None, 1.0)
     if held[0].size:
         # a key held down is no element: blanked, the lattice reads it as a pause. Held

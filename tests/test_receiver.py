@@ -212,3 +212,14 @@ def test_result_to_dict_is_json():
     d = json.loads(json.dumps(got.to_dict()))
     assert d == got.to_dict()
     assert d["file"] == "<array>"
+
+
+def test_noise_read_at_an_absurd_speed_does_not_win_the_filter_choice():
+    # 5 WPM at 19 dB-Hz: through the shortest filter, noise reads as code at about
+    # 150 WPM whose classes fit as well as the real ones; speeds people and keyers send
+    # at (about 4 to 60 WPM, common practice) must win
+    rec = synth("QZ4RB DE QY2LM", wpm=5.0, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=19.0,
+                seed=7051)
+    got = decode_array(rec.samples, rec.rate_hz)
+    assert got.wpm == pytest.approx(5.0, rel=0.05)
+    assert got.text == rec.truth.text
