@@ -214,7 +214,7 @@ def find(envelope: Envelope, *, window_s: float = 2.0, hysteresis_db: float = 0.
             guard_s = 0.5 * envelope.filter_s + 2.0 / envelope.rate_hz
             gap_start = np.concatenate([[-np.inf], first[1]])
             gap_end = np.concatenate([first[0], [np.inf]])
-            mask = _inside(envelope.time_s, gap_start + guard_s, gap_end - guard_s)
+            mask = inside(envelope.time_s, gap_start + guard_s, gap_end - guard_s)
             lv = levels(envelope, window_s=window_s, p_fa=p_fa, noise_mask=mask)
     else:
         lv = levels_
@@ -276,7 +276,7 @@ def _mark_levels(envelope: Envelope, lv: Levels, start_s: np.ndarray,
     return Levels(time_s=centre_s, noise=noise, mark=level, threshold=threshold, sigma=sigma)
 
 
-def _inside(t: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+def inside(t: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
     """Samples of t inside any [lo, hi] (sorted, disjoint intervals)."""
     i0 = np.searchsorted(t, lo)
     i1 = np.searchsorted(t, hi)

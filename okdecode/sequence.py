@@ -72,14 +72,14 @@ References
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import lru_cache
 from typing import Protocol
 
 import numpy as np
 
 from .baseband import Baseband, Envelope, moving_average, noise_density
-from .marks import Marks
+from .marks import Marks, inside
 from .symbols import CHARACTER, ELEMENT, HELD_MARK_UNITS, WORD, Symbols, farnsworth_wpm
 from .text import PATTERNS, decode
 
@@ -1076,12 +1076,12 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
     best = _decide(baseband, t_s, density, tries, k, dot_s, line_s, line_p)
     if best is None:
         return marks, symbols
-    ratio = _band_to_spaces(envelope, best.decision, held)
-    if ratio is not None and ratio < FILTERED_BAND_RATIO:
+    band_ratio = _band_to_spaces(envelope, best.decision, held)
+    if band_ratio is not None and band_ratio < FILTERED_BAND_RATIO:
         # the noise band reads well under the noise in this decision's spaces, over the
         # whole recording: a receiver's narrow filter has cut it. Calibrated to the
         # spaces, the ratios of the marks are decided again
-        density = density / ratio**2
+        density = density / band_ratio**2
         best = _decide(baseband, t_s, density, tries, k, dot_s, line_s, line_p) or best
     segments, durations, track = best.segments, best.durations, best.track
     start_s, end_s = best.decision.start_s, best.decision.end_s
@@ -1118,8 +1118,6 @@ def refine(baseband: Baseband, envelope: Envelope, marks: Marks, symbols: Symbol
 def _blank(baseband: Baseband, t_s: np.ndarray, lo_s: np.ndarray, hi_s: np.ndarray
            ) -> Baseband:
     """The baseband with its samples inside the intervals [lo_s, hi_s] set to zero."""
-    from dataclasses import replace
-
     z = baseband.samples.copy()
     for a, b in zip(np.searchsorted(t_s, lo_s), np.searchsorted(t_s, hi_s), strict=True):
         z[a:b] = 0
@@ -1166,16 +1164,11 @@ def _band_to_spaces(envelope: Envelope, decision: _Decision,
     key_on, key_off = key_on[order], np.concatenate([decision.end_s, held[1]])[order]
     lo = np.concatenate([[-np.inf], key_off]) + guard_s
     hi = np.concatenate([key_on, [np.inf]]) - guard_s
-    i0, i1 = np.searchsorted(t, lo), np.searchsorted(t, hi)
-    ok = i1 > i0
-    delta = np.zeros(t.size + 1, dtype=np.int64)
-    np.add.at(delta, i0[ok], 1)
-    np.add.at(delta, i1[ok], -1)
-    inside = np.cumsum(delta[:-1]) > 0
-    if inside.sum() < 64:
+    gaps = inside(t, lo, hi)
+    if gaps.sum() < 64:
         return None
-    spaces = math.sqrt(float(np.mean(x[inside] ** 2)) / 2.0)
-    band = math.sqrt(float(np.mean(envelope.noise_sigma[inside] ** 2)))
+    spaces = math.sqrt(float(np.mean(x[gaps] ** 2)) / 2.0)
+    band = math.sqrt(float(np.mean(envelope.noise_sigma[gaps] ** 2)))
     return band / spaces if spaces > 0 else None
 
 

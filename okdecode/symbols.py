@@ -283,12 +283,12 @@ def _track(start: np.ndarray, ref: np.ndarray, u_samples: np.ndarray,
     cuts = np.flatnonzero(ref[1:] != ref[:-1]) + 1
     for lo, hi in zip(np.concatenate([[0], cuts]), np.concatenate([cuts, [start.size]]),
                       strict=True):
-        t_lo = start[lo]
-        t_hi = start[hi] if hi < start.size else np.inf
-        inside = (u_times >= t_lo) & (u_times < t_hi)
-        if inside.sum() >= 2:
-            track = _running_median(u_samples[inside], 11)
-            local[lo:hi] = np.interp(start[lo:hi], u_times[inside], track)
+        # u_times are sorted: the run's samples are one slice of them
+        i0 = int(np.searchsorted(u_times, start[lo]))
+        i1 = int(np.searchsorted(u_times, start[hi])) if hi < start.size else u_times.size
+        if i1 - i0 >= 2:
+            track = _running_median(u_samples[i0:i1], 11)
+            local[lo:hi] = np.interp(start[lo:hi], u_times[i0:i1], track)
     return local
 
 
