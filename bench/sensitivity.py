@@ -4,6 +4,7 @@ path and the genie receiver, with the 5 % crossing points; and the sequence deco
     python bench/sensitivity.py            # 18 to 38 dB-Hz in 1 dB steps, 20 messages a point
     python bench/sensitivity.py --quick    # 2 dB steps, 8 messages a point
     python bench/sensitivity.py --speed    # only the decode speed
+    python bench/sensitivity.py --case "5 WPM" --case "8 WPM" --messages 10   # slow code
 
 Cases: machine-timed code at 12, 20 and 30 WPM; hand-keyed code at 20 WPM (jitter 10 %,
 weight 10 %, dash/dot 3.3), whose genie knows the true element boundaries; slow fading of
@@ -40,6 +41,11 @@ CASES = {
     "hand-keyed 20 WPM": {"wpm": 20.0, "jitter": 0.10, "weight": 0.10, "dash_dot_ratio": 3.3},
     "fading 15 dB 20 WPM": {"wpm": 20.0, "fading_db": 15.0},
 }
+#: Run on request only (``--case``): slow code makes long recordings.
+EXTRA_CASES = {
+    "5 WPM": {"wpm": 5.0},
+    "8 WPM": {"wpm": 8.0},
+}
 DECODERS = ("sequence", "threshold", "genie")
 TARGET_CER = 0.05
 _ALPHABET = "ABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789"
@@ -57,8 +63,9 @@ def _one(job: tuple[str, float, int, bool]) -> tuple[str, float, int, dict, obje
     """Decode one recording three ways; the genie's slots come back for its threshold."""
     case, cn0_dbhz, index, carrier_known = job
     sent = message(index)
-    seed = int(1e6 * list(CASES).index(case) + 1e3 * cn0_dbhz + index)
-    rec = synth(sent, cn0_dbhz=cn0_dbhz, seed=seed, **CASES[case])
+    every = {**CASES, **EXTRA_CASES}
+    seed = int(1e6 * list(every).index(case) + 1e3 * cn0_dbhz + index)
+    rec = synth(sent, cn0_dbhz=cn0_dbhz, seed=seed, **every[case])
     truth = canonical(rec.truth.text)
     options = {"carrier_hz": rec.truth.scenario.carrier_hz} if carrier_known else {}
     # each decoder as a user runs it (okdecode decode --decoder ...)
@@ -84,8 +91,10 @@ def crossing(cn0_dbhz: np.ndarray, cer: np.ndarray, target: float = TARGET_CER
 
 
 def sensitivity(cn0_grid: np.ndarray, n_messages: int, *, carrier_known: bool,
-                workers: int) -> dict[str, dict[str, np.ndarray]]:
-    jobs = [(case, float(c), i, carrier_known) for case in CASES for c in cn0_grid
+                workers: int, cases: list[str] | None = None
+                ) -> dict[str, dict[str, np.ndarray]]:
+    cases = cases or list(CASES)
+    jobs = [(case, float(c), i, carrier_known) for case in cases for c in cn0_grid
             for i in range(n_messages)]
     chars: dict = {}
     errs: dict = {}
@@ -102,7 +111,7 @@ def sensitivity(cn0_grid: np.ndarray, n_messages: int, *, carrier_known: bool,
         b = genie.best_fixed_threshold([p[0] for p in parts])
         errs[("genie",) + key] = sum(edit_distance(genie.text(s, b), t) for s, t in parts)
     out: dict[str, dict[str, np.ndarray]] = {}
-    for case in CASES:
+    for case in cases:
         out[case] = {name: np.array([errs[(name, case, float(c))] / chars[(case, float(c))]
                                      for c in cn0_grid]) for name in DECODERS}
     return out
@@ -184,17 +193,22 @@ def main() -> None:
     parser.add_argument("--messages", type=int, default=None)
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--png", default="sensitivity.png")
+    parser.add_argument("--case", action="append", default=None,
+                        choices=list(CASES) + list(EXTRA_CASES),
+                        help="only this case (repeat for more); 5 and 8 WPM only this way")
     args = parser.parse_args()
-    speed()
+    if args.case is None:
+        speed()
     if args.speed:
         return
     step, n = (2.0, 8) if args.quick else (1.0, 20)
     n = args.messages or n
     grid = np.arange(18.0, 38.0 + step / 2, step)
     t0 = time.perf_counter()
-    result = sensitivity(grid, n, carrier_known=args.carrier_known, workers=args.workers)
+    result = sensitivity(grid, n, carrier_known=args.carrier_known, workers=args.workers,
+                         cases=args.case)
     title = f"carrier {'given' if args.carrier_known else 'unknown'}, speed unknown"
-    print(f"\n{len(CASES)} cases x {grid.size} points x {n} messages in "
+    print(f"\n{len(result)} cases x {grid.size} points x {n} messages in "
           f"{time.perf_counter() - t0:.0f} s; {title}")
     report(grid, result, args.png, f"okdecode: CER against C/N0, {title}")
 
