@@ -179,15 +179,21 @@ def test_an_abrupt_speed_change_keeps_both_speeds(first_wpm, then_wpm):
     np.testing.assert_allclose(syms.local_dot_s, true_dot, rtol=1e-9)
 
 
+def _after_a_long_mark(mark_units: float, gap_units: float):
+    """The exact keying of MESSAGE at 20 WPM after one mark and gap of these lengths."""
+    k = key(MESSAGE, wpm=20.0)
+    u = dot_s_from_wpm(20.0)
+    shift = (mark_units + gap_units) * u
+    syms = classify(marks_of(np.concatenate([[0.0], k.start_s + shift]),
+                             np.concatenate([[mark_units * u], k.end_s + shift])))
+    return k, u, syms
+
+
 def test_a_key_held_down_is_set_aside():
     # a tuning carrier of 50 units, a pause, then the message: the long mark is no element
     # (ITU-R M.1677-1 has none longer than 3 units), so the classes and the text are the
     # message's alone and the held mark is reported apart
-    k = key(MESSAGE, wpm=20.0)
-    u = dot_s_from_wpm(20.0)
-    shift = 50 * u + 10 * u
-    syms = classify(marks_of(np.concatenate([[0.0], k.start_s + shift]),
-                             np.concatenate([[50 * u], k.end_s + shift])))
+    k, u, syms = _after_a_long_mark(50.0, 10.0)
     np.testing.assert_array_equal(syms.is_dash, k.units == 3)
     assert decode(syms).text == k.text
     np.testing.assert_allclose([syms.held_start_s[0], syms.held_end_s[0]], [0.0, 50 * u])
@@ -196,10 +202,6 @@ def test_a_key_held_down_is_set_aside():
 
 def test_a_mark_longer_than_a_word_gap_does_not_split_the_classes():
     # a 12-unit mark among the message's: a dash, and every other class as keyed
-    k = key(MESSAGE, wpm=20.0)
-    u = dot_s_from_wpm(20.0)
-    shift = 12 * u + 7 * u
-    syms = classify(marks_of(np.concatenate([[0.0], k.start_s + shift]),
-                             np.concatenate([[12 * u], k.end_s + shift])))
+    k, _, syms = _after_a_long_mark(12.0, 7.0)
     assert syms.is_dash[0] and syms.held_start_s.size == 0
     np.testing.assert_array_equal(syms.is_dash[1:], k.units == 3)
