@@ -166,15 +166,17 @@ def test_wide_search_finds_farnsworth_speeds_and_start():
     assert abs(d.end_s - rec.truth.keying.end_s[-1]) < 0.5 * rec.truth.keying.dot_s
 
 
-@pytest.mark.parametrize("cn0", [16.0, 22.0, 28.0])
+@pytest.mark.parametrize("cn0", [16.0, 22.0, 28.0, 34.0])
 def test_cn0_from_matched_energy(cn0):
-    # the generator's C/N0 definition for I/Q: C = A^2, N0 = sigma^2 / fs
+    # the generator's C/N0 definition for I/Q: C = A^2, N0 = sigma^2 / fs. Measured in
+    # the interiors of the fitted template's marks and spaces, a strong signal reads as
+    # true as a weak one (the cells' energy ratio read 2.5 dB low at 30 dB-Hz)
     est = []
     for seed in range(5):
         rec = synth(MSG, iq=True, rate_hz=RATE_HZ, carrier_hz=0.0, cn0_dbhz=cn0, wpm=20,
                     seed=seed)
         est.append(search(_baseband(rec.samples), MSG, **NARROW).cn0_dbhz)
-    assert abs(np.median(est) - cn0) < 1.5
+    assert abs(np.median(est) - cn0) < 0.75
 
 
 def test_search_tunes_when_the_decoder_found_no_carrier():
