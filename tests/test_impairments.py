@@ -196,3 +196,17 @@ def test_slow_code_near_its_limit_is_found(seed):
     got = decode_array(rec.samples, rec.rate_hz)
     assert got.text == rec.truth.text
     assert abs(got.carrier_hz - 700.0) < 5.0
+
+
+@pytest.mark.parametrize("period_s", [3.0, 8.0])
+def test_a_stronger_steady_carrier_that_fades_is_not_taken_for_the_keyed_one(period_s):
+    # a steady carrier 800 Hz up, 10 dB stronger than the keyed one at its peak, fading
+    # by 20 dB (sinusoidal in dB) with a period of seconds: its power swings as far as
+    # keying does, but smoothly; the keyed carrier must be the one decoded
+    rec = synth(MESSAGE, wpm=20.0, carrier_hz=700.0, rate_hz=8000.0, cn0_dbhz=30.0, seed=48)
+    t = np.arange(rec.samples.size) / rec.rate_hz
+    fade_db = -10.0 * (1.0 + np.sin(2 * np.pi * t / period_s))
+    steady = rec.truth.amplitude * np.sqrt(10.0) * 10 ** (fade_db / 20.0)
+    got = decode_array(rec.samples + steady * np.cos(2 * np.pi * 1500.0 * t), rec.rate_hz)
+    assert abs(got.carrier_hz - 700.0) < 10.0
+    assert got.text == rec.truth.text
