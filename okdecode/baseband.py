@@ -268,9 +268,9 @@ class KeyingSearch:
         # keying switches: its power decorrelates within a few elements, while a fading
         # steady carrier's swings smoothly over seconds and is as correlated 8 frames on
         # as 1 (a random keying of 5 WPM keeps about 0.7 of it, a fade of a 3 s period
-        # 0.98): such bins come after the others too
+        # 0.98): among the bins not dominated, such bins come after the others
         fading = self._best_smooth > FADING_SMOOTHNESS
-        order = np.lexsort((-keyed_power.ravel(), (dominated | fading).ravel()))
+        order = np.lexsort((-keyed_power.ravel(), fading.ravel(), dominated.ravel()))
         for flat in order:
             ch, b = np.unravel_index(flat, z.shape)
             if not valid[b] or z[ch, b] < threshold or keyed_power[ch, b] <= 0:

@@ -143,7 +143,7 @@ def test_a_receivers_narrow_filter_leaves_the_carrier_found(seed, decoder):
     assert got.text == rec.truth.text
 
 
-@pytest.mark.parametrize("seed", [40, 42, 43])
+@pytest.mark.parametrize("seed", [40, 42, 43, 48])
 def test_a_receivers_narrow_filter_near_the_decoding_limit(seed):
     # the noise band beside the carrier (100 to 225 Hz off) is mostly outside the filter,
     # so it under-reads the noise the envelope sees; 26 dB-Hz decodes cleanly at 20 WPM
