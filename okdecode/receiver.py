@@ -127,6 +127,7 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
     targets: list[_Target] = []
     if opts.carrier_hz is None or (chan is None and capture.n_channels > 1):
         spectrum = bb.search_carriers(capture, progress=progress)
+        first_bin_hz = spectrum.bin_hz
         found = [c for c in spectrum.carriers if chan is None or c.channel == chan]
         if opts.carrier_hz is not None:
             near = [c for c in found
@@ -152,7 +153,8 @@ def _decode(capture: Capture, *, carrier_hz, channel, wpm, decoder, progress,
             return [report.empty(file=capture.source, duration_s=capture.duration_s,
                                  rate_hz=capture.rate_hz, channel=chan, decoder=opts.decoder,
                                  warnings=warnings, notes=notes, spectrum=spectrum)]
-        if all_carriers and found:
+        if all_carriers and found and spectrum.bin_hz == first_bin_hz:
+            # the first search's bins merge close stations (the longer frames' do not)
             found = found + _close_neighbours(capture, spectrum, found, chan,
                                               progress=progress)
         for c in _distinct(found):
